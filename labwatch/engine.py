@@ -1,0 +1,294 @@
+"""The monitor engine: frames in, snapshots out.  One code path for live streams and replay.
+
+:class:`MonitorEngine` is pure (no sockets, no threads, no clocks of its own): the transport or
+the replay reader hands it each message's frames with the wall-clock time it was received.
+Analysis epochs are cut on the *source* clock (every ``epoch_s`` seconds of ``t_stop``), so the
+same recorded messages always give the same snapshots, however fast they are replayed.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter, deque
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from labwatch.accumulate import RunAccumulator
+from labwatch.analysis import AnalysisConfig, Analyzer
+from labwatch.protocol import (
+    DEFAULT_LIMITS,
+    CountBatch,
+    Limits,
+    MessageRejected,
+    SourceStatus,
+    parse_message,
+)
+from labwatch.sequence import SequenceTracker
+from labwatch.snapshot import RejectionNote, Snapshot, StreamHealth
+
+__all__ = ["EngineConfig", "IngestResult", "MonitorEngine"]
+
+
+@dataclass(frozen=True)
+class EngineConfig:
+    """Settings of a :class:`MonitorEngine`.
+
+    Attributes
+    ----------
+    window_s : float
+        Rolling-window length, seconds of source clock.
+    epoch_s : float
+        Analysis interval, seconds of source clock (figures are recomputed once per epoch).
+    analysis : AnalysisConfig
+    source : str or None
+        Follow only this source id; None follows the first source seen.
+    recent_rejections : int
+        How many recent rejections are kept with their reasons.
+    limits : Limits
+        Message size caps.
+    """
+
+    window_s: float = 30.0
+    epoch_s: float = 1.0
+    analysis: AnalysisConfig = field(default_factory=AnalysisConfig)
+    source: str | None = None
+    recent_rejections: int = 20
+    limits: Limits = DEFAULT_LIMITS
+
+    def __post_init__(self) -> None:
+        for name in ("window_s", "epoch_s"):
+            v = getattr(self, name)
+            if not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
+                raise ValueError(f"{name} must be a positive number of seconds, got {v!r}")
+
+
+@dataclass(frozen=True)
+class IngestResult:
+    """Outcome of one :meth:`MonitorEngine.ingest` call.
+
+    ``accepted`` is True for data and status messages that were used; ``reason``/``detail``
+    explain a rejection; ``snapshots`` are the snapshots this message completed (usually
+    none, one when an epoch closed, two when a run ended and the next began).
+    """
+
+    accepted: bool
+    kind: str
+    reason: str = ""
+    detail: str = ""
+    snapshots: tuple[Snapshot, ...] = ()
+
+
+class MonitorEngine:
+    """Validate, sequence-check, accumulate and analyse a coincidence stream.
+
+    Parameters
+    ----------
+    config : EngineConfig
+    on_snapshot : callable, optional
+        Called with every new :class:`Snapshot` (from inside :meth:`ingest`).
+    """
+
+    def __init__(
+        self,
+        config: EngineConfig | None = None,
+        on_snapshot: Callable[[Snapshot], None] | None = None,
+    ) -> None:
+        self.config = config or EngineConfig()
+        self._callbacks: list[Callable[[Snapshot], None]] = []
+        if on_snapshot is not None:
+            self._callbacks.append(on_snapshot)
+        self.tracker = SequenceTracker()
+        self.messages = 0
+        self.accepted = 0
+        self.rejected = 0
+        self.ignored_other_source = 0
+        self.heartbeats = 0
+        self.reasons: Counter[str] = Counter()
+        self.recent: deque[RejectionNote] = deque(maxlen=self.config.recent_rejections)
+        self.source_state: str | None = None
+        self.last_message_wall: float | None = None
+        self.last_heartbeat_wall: float | None = None
+        self.last_status: SourceStatus | None = None
+        self.source: str | None = self.config.source
+        self.run: RunAccumulator | None = None
+        self.analyzer: Analyzer | None = None
+        self.latest: Snapshot | None = None
+        self.epoch = 0
+        self.runs_seen = 0
+        self.closed_clock_jumps = 0
+        self._epoch_counts: np.ndarray | None = None
+        self._next_epoch_t = math.inf
+
+    # ------------------------------------------------------------------ subscriptions
+    def subscribe(self, callback: Callable[[Snapshot], None]) -> None:
+        """Call ``callback(snapshot)`` for every new snapshot."""
+        self._callbacks.append(callback)
+
+    # ------------------------------------------------------------------ ingest
+    def ingest(self, frames: Sequence[bytes], received_wall: float = math.nan) -> IngestResult:
+        """Process one message as received; never raises for bad input."""
+        self.messages += 1
+        self.last_message_wall = received_wall
+        try:
+            msg = parse_message(frames, self.config.limits)
+        except MessageRejected as exc:
+            return self._reject(exc.reason, exc.detail, received_wall)
+        except Exception as exc:  # a parser bug must not stop the monitor; count it visibly
+            return self._reject(
+                "header_field", f"unexpected {type(exc).__name__}: {exc}"[:200], received_wall
+            )
+        if self.source is None:
+            self.source = msg.source
+        if msg.source != self.source:
+            self.ignored_other_source += 1
+            return IngestResult(
+                False, "ignored", "other_source", f"source {msg.source!r} is not followed"
+            )
+        if isinstance(msg, SourceStatus):
+            self.heartbeats += 1
+            self.accepted += 1
+            self.source_state = msg.state
+            self.last_heartbeat_wall = received_wall
+            self.last_status = msg
+            return IngestResult(True, "status")
+        return self._ingest_batch(msg, received_wall)
+
+    def _reject(self, reason: str, detail: str, wall: float) -> IngestResult:
+        self.rejected += 1
+        self.reasons[reason] += 1
+        self.recent.append(RejectionNote(wall, reason, detail))
+        return IngestResult(False, "rejected", reason, detail)
+
+    def _ingest_batch(self, batch: CountBatch, wall: float) -> IngestResult:
+        snaps: list[Snapshot] = []
+        known_run = self.tracker.current_run(batch.source)
+        if self.run is not None and known_run == batch.run and batch.scenario != self.run.scenario:
+            return self._reject(
+                "scenario_change",
+                f"run {batch.run!r} declared {self.run.scenario.shape}, message has {batch.scenario.shape}",
+                wall,
+            )
+        verdict = self.tracker.check(batch.source, batch.run, batch.seq)
+        if verdict == "duplicate":
+            return self._reject(
+                "duplicate", f"seq {batch.seq} of run {batch.run!r} seen before", wall
+            )
+        if verdict == "stale_run":
+            return self._reject("stale_run", f"run {batch.run!r} already ended", wall)
+        if verdict == "first":
+            if self.run is not None:
+                snaps.extend(self._close_epoch())
+            self._start_run(batch.source, batch.run, batch.scenario, batch.t_start)
+        assert self.run is not None and self._epoch_counts is not None
+        self.run.add(batch)
+        self._epoch_counts += batch.counts
+        self.accepted += 1
+        if batch.t_stop >= self._next_epoch_t:
+            snaps.extend(self._close_epoch())
+            k = math.floor((batch.t_stop - self._epoch_origin) / self.config.epoch_s) + 1
+            self._next_epoch_t = self._epoch_origin + k * self.config.epoch_s
+        return IngestResult(True, batch.kind, snapshots=tuple(snaps))
+
+    def _start_run(self, source: str, run: str, scenario, t0: float) -> None:
+        self.run = RunAccumulator(
+            source, run, scenario, self.config.window_s, t0, index=self.runs_seen
+        )
+        self.runs_seen += 1
+        self.analyzer = Analyzer(scenario, self.config.analysis)
+        self._epoch_counts = np.zeros(scenario.shape, dtype=np.int64)
+        self._epoch_origin = t0
+        self._next_epoch_t = t0 + self.config.epoch_s
+
+    def new_run(self) -> tuple[Snapshot, ...]:
+        """Start a new run segment by hand: cumulative counts restart, the stream goes on."""
+        if self.run is None:
+            return ()
+        snaps = self._close_epoch()
+        old = self.run
+        t0 = old.t_last if old.t_last is not None else old.started_at
+        self.closed_clock_jumps += old.clock_jumps
+        self._start_run(old.source, old.run, old.scenario, t0)
+        return snaps
+
+    def flush(self) -> tuple[Snapshot, ...]:
+        """Close the current epoch now (end of stream or of a replay)."""
+        return self._close_epoch()
+
+    # ------------------------------------------------------------------ snapshots
+    def health(self) -> StreamHealth:
+        """Current stream health (cheap; callable at any time)."""
+        c = self.tracker.counters
+        jumps = self.closed_clock_jumps + (self.run.clock_jumps if self.run is not None else 0)
+        return StreamHealth(
+            messages=self.messages,
+            accepted=self.accepted,
+            rejected=self.rejected,
+            rejections_by_reason=tuple(sorted(self.reasons.items())),
+            recent_rejections=tuple(self.recent),
+            gaps=c.gaps,
+            missing=c.missing,
+            missed_at_start=c.missed_at_start,
+            late=c.late,
+            duplicates=c.duplicates,
+            restarts=c.restarts,
+            clock_jumps=jumps,
+            heartbeats=self.heartbeats,
+            source_state=self.source_state,
+            last_message_wall=self.last_message_wall,
+            last_heartbeat_wall=self.last_heartbeat_wall,
+        )
+
+    def _close_epoch(self) -> tuple[Snapshot, ...]:
+        run, analyzer = self.run, self.analyzer
+        if run is None or analyzer is None or self._epoch_counts is None or run.messages == 0:
+            return ()
+        if (
+            not self._epoch_counts.any()
+            and self.latest is not None
+            and self.latest.run == run.run
+            and self.latest.run_index == run.index
+        ):
+            return ()
+        figs = analyzer.analyze(run, self._epoch_counts)
+        counts = run.counts.copy()
+        counts.setflags(write=False)
+        window = run.window.total.copy()
+        window.setflags(write=False)
+        snap = Snapshot(
+            epoch=self.epoch,
+            source=run.source,
+            run=run.run,
+            run_index=run.index,
+            scenario=run.scenario,
+            t_start=run.t_first if run.t_first is not None else math.nan,
+            t_stop=run.t_last if run.t_last is not None else math.nan,
+            window_s=self.config.window_s,
+            counts=counts,
+            window_counts=window,
+            trials=run.trials,
+            window_trials=int(window.sum()),
+            live_time_s=run.live_time_s,
+            random_settings=run.random_settings and not run.block_settings,
+            functional=figs.functional,
+            bell=figs.bell,
+            bell_window=figs.bell_window,
+            correlators=figs.correlators,
+            correlator_errors=figs.correlator_errors,
+            contrast=figs.contrast,
+            rates=figs.rates,
+            figures=figs.figures,
+            health=self.health(),
+            extras=figs.extras,
+        )
+        self.epoch += 1
+        self._epoch_counts[:] = 0
+        self.latest = snap
+        for cb in self._callbacks:
+            cb(snap)
+        return (snap,)
+
+    def with_health(self, snapshot: Snapshot) -> Snapshot:
+        """``snapshot`` with the health figures brought up to now (for views)."""
+        return replace(snapshot, health=self.health())
