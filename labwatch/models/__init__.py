@@ -1,8 +1,14 @@
-"""Physics models: bipartite states, measurement bases, the Born rule and detectors."""
+"""Physics models: bipartite states, measurement bases, the Born rule and detectors.
+
+Pure layer (numpy only).  Modules: :mod:`~labwatch.models.states`,
+:mod:`~labwatch.models.bases`, :mod:`~labwatch.models.born`,
+:mod:`~labwatch.models.detectors`, :mod:`~labwatch.models.finite_field`.
+"""
 
 from __future__ import annotations
 
 from labwatch.models.bases import (
+    CHSH_HWP_DEG,
     BasisError,
     NotPrimePowerError,
     as_bases,
@@ -19,6 +25,12 @@ from labwatch.models.bases import (
     rotate,
 )
 from labwatch.models.born import probabilities
+from labwatch.models.detectors import (
+    DetectorError,
+    DetectorModel,
+    accidental_coincidence_rate,
+    click_response,
+)
 from labwatch.models.states import (
     StateError,
     as_density_matrix,
@@ -34,7 +46,12 @@ from labwatch.models.states import (
 )
 
 __all__ = [
+    "CHSH_HWP_DEG",
     "BasisError",
+    "DetectorError",
+    "DetectorModel",
+    "accidental_coincidence_rate",
+    "click_response",
     "NotPrimePowerError",
     "StateError",
     "as_bases",

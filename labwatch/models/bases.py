@@ -21,6 +21,7 @@ from labwatch.models.finite_field import GaloisField, NotPrimePowerError, prime_
 
 __all__ = [
     "BasisError",
+    "CHSH_HWP_DEG",
     "NotPrimePowerError",
     "as_bases",
     "cglmp_bases",

@@ -67,13 +67,17 @@ def probabilities(
         )
     if arr.ndim == 1:
         psi = validate_state_vector(arr).reshape(d_a, d_b)
-        amp = np.einsum("xja,ykb,jk->xyab", ua.conj(), ub.conj(), psi, optimize=True)
-        p = np.abs(amp) ** 2
+        # amp[x, y, a, b] = sum_jk conj(U_x[j, a]) conj(V_y[k, b]) psi[j, k]
+        left = np.einsum("xja,jk->xak", ua.conj(), psi)
+        amp = np.einsum("xak,ykb->xyab", left, ub.conj())
+        p = amp.real**2 + amp.imag**2
     else:
         rho = validate_density_matrix(arr).reshape(d_a, d_b, d_a, d_b)
-        p = np.einsum(
-            "xja,ykb,jkJK,xJa,yKb->xyab", ua.conj(), ub.conj(), rho, ua, ub, optimize=True
-        ).real
+        # contract Alice's bra and ket first, then Bob's (pairwise einsums, no path search)
+        t = np.einsum("xja,jkJK->xakJK", ua.conj(), rho)
+        t = np.einsum("xakJK,xJa->xakK", t, ua)
+        t = np.einsum("ykb,xakK->xyabK", ub.conj(), t)
+        p = np.einsum("xyabK,yKb->xyab", t, ub).real
     worst = float(p.min())
     if worst < -_NEGATIVE_ATOL:
         raise StateError(f"Born rule produced a negative probability {worst:.3g}")
