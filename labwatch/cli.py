@@ -70,7 +70,7 @@ def _add_simulate(sub: argparse._SubParsersAction) -> None:
         help="extra half-wave-plate rotation on Bob, degrees (polarization source)",
     )
     p.add_argument(
-        "--rate", type=_positive, default=20000.0, help="detected pairs per second (default 20000)"
+        "--rate", type=_positive, default=50000.0, help="emitted pairs per second (default 50000); detected coincidences are fewer by the efficiencies"
     )
     p.add_argument(
         "--efficiency",

@@ -64,7 +64,7 @@ class PublisherConfig:
     speed: float = 1.0
     seed: int = 0
     startup_delay_s: float = 0.5
-    coincidence_window_s: float = 1e-9
+    coincidence_window_s: float = 2e-9
     faults: FaultConfig = field(default_factory=FaultConfig)
     control_endpoint: str | None = None
     server_keys: object | None = None
@@ -105,12 +105,22 @@ def generate_message(
     dt = cfg.message_interval_s
     t_mid = t0 + dt / 2
     n = int(rng.poisson(source.trial_rate(t_mid) * dt))
-    singles = None
     rates = source.singles_rates(t_mid)
+    if cfg.settings == "blocks":
+        pair_index = int(math.floor(t_mid / cfg.block_s)) % sc.setting_pairs
+        x0, y0 = divmod(pair_index, sc.settings_b)
+        weights_a = np.eye(sc.settings_a)[x0]
+        weights_b = np.eye(sc.settings_b)[y0]
+    else:
+        weights_a, weights_b = q.sum(axis=1), q.sum(axis=0)
+    singles = None
     if rates is not None:
+        # singles rates are per setting and detector: (m, d); weight by the settings in use
+        ra = weights_a @ np.asarray(rates[0], dtype=float).reshape(sc.settings_a, -1)
+        rb = weights_b @ np.asarray(rates[1], dtype=float).reshape(sc.settings_b, -1)
         singles = (
-            [int(v) for v in rng.poisson(np.asarray(rates[0]) * dt)],
-            [int(v) for v in rng.poisson(np.asarray(rates[1]) * dt)],
+            [int(v) for v in rng.poisson(ra * dt)],
+            [int(v) for v in rng.poisson(rb * dt)],
         )
     common = dict(
         source=cfg.source_id,
@@ -123,14 +133,12 @@ def generate_message(
         coincidence_window_s=cfg.coincidence_window_s,
     )
     if cfg.settings == "blocks":
-        pair_index = int(math.floor(t_mid / cfg.block_s)) % sc.setting_pairs
-        x, y = divmod(pair_index, sc.settings_b)
         a, b = source.sample(
-            rng, t_mid, np.full(n, x, dtype=np.int64), np.full(n, y, dtype=np.int64)
+            rng, t_mid, np.full(n, x0, dtype=np.int64), np.full(n, y0, dtype=np.int64)
         )
         hist = np.bincount(a * sc.outcomes_b + b, minlength=sc.outcomes_a * sc.outcomes_b)
         return encode_histogram(
-            counts=hist.reshape(sc.outcomes_a, sc.outcomes_b), pair=(x, y), **common
+            counts=hist.reshape(sc.outcomes_a, sc.outcomes_b), pair=(x0, y0), **common
         )
     flat = rng.choice(q.size, size=n, p=q.ravel())
     x, y = np.divmod(flat, sc.settings_b)
