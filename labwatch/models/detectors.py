@@ -268,7 +268,10 @@ class DetectorModel:
     def detected_probabilities(
         self, probabilities: ArrayLike, keep_no_click: bool = False
     ) -> NDArray[np.float64]:
-        """:meth:`trial_probabilities` when ``keep_no_click`` else :meth:`coincidence_probabilities`."""
+        """:meth:`trial_probabilities` if ``keep_no_click``, else :meth:`coincidence_probabilities`.
+
+        Shape ``(m_A, m_B, d_A + 1, d_B + 1)`` or ``(m_A, m_B, d_A, d_B)`` respectively.
+        """
         if keep_no_click:
             return self.trial_probabilities(probabilities)
         return self.coincidence_probabilities(probabilities)
