@@ -206,24 +206,53 @@ def encode_header(metadata: Mapping[str, Any] | None, wall: float, mono: float) 
     return head + _U32.pack(zlib.crc32(head))
 
 
+_SIZE_STRUCTS: dict[int, struct.Struct] = {}
+
+
+def _sizes_struct(n: int) -> struct.Struct:
+    st = _SIZE_STRUCTS.get(n)
+    if st is None:
+        st = struct.Struct(f"<{n}I")
+        if len(_SIZE_STRUCTS) < 256:
+            _SIZE_STRUCTS[n] = st
+    return st
+
+
+def _frame_size(i: int, frame: Any) -> tuple[int, Any]:
+    """Size of a frame that is not ``bytes``/``bytearray``, and a joinable form of it."""
+    if isinstance(frame, str):
+        raise RecordInputError(f"frame {i} is a str ({frame[:40]!r}); frames must be bytes")
+    try:
+        view = memoryview(frame)
+    except TypeError:
+        raise RecordInputError(
+            f"frame {i} is a {type(frame).__name__} ({frame!r:.60}), not a bytes-like object"
+        ) from None
+    if not view.c_contiguous:
+        return view.nbytes, view.tobytes()
+    return view.nbytes, view
+
+
 def encode_record(
     kind: str, frames: Sequence[Any], wall: float, mono: float, text: bytes, cap: int
 ) -> bytes:
     """One encoded record of ``kind``; frames are any bytes-like objects."""
+    if type(frames) is not list and type(frames) is not tuple:
+        frames = tuple(frames)
     sizes = []
+    append = sizes.append
+    parts = None
     for i, frame in enumerate(frames):
-        if type(frame) is bytes or type(frame) is bytearray:
-            sizes.append(len(frame))
+        t = type(frame)
+        if t is bytes or t is bytearray:
+            append(len(frame))
             continue
-        if isinstance(frame, str):
-            raise RecordInputError(f"frame {i} is a str ({frame[:40]!r}); frames must be bytes")
-        try:
-            view = memoryview(frame)
-        except TypeError:
-            raise RecordInputError(
-                f"frame {i} is a {type(frame).__name__} ({frame!r:.60}), not a bytes-like object"
-            ) from None
-        sizes.append(view.nbytes)
+        size, joinable = _frame_size(i, frame)
+        append(size)
+        if joinable is not frame:
+            if parts is None:
+                parts = list(frames)
+            parts[i] = joinable
     n = len(sizes)
     body_len = _BODY_FIXED.size + len(text) + 4 * n + sum(sizes)
     if body_len > cap:
@@ -235,8 +264,8 @@ def encode_record(
             _U32.pack(zlib.crc32(head12)),
             _BODY_FIXED.pack(wall, mono, n, len(text)),
             text,
-            struct.pack(f"<{n}I", *sizes),
-            *frames,
+            _sizes_struct(n).pack(*sizes),
+            *(frames if parts is None else parts),
         )
     )
     return rec + _U32.pack(zlib.crc32(rec))
@@ -253,30 +282,36 @@ def check_time(name: str, value: Any) -> float:
     return out
 
 
-def parse_body(kind: str, body: memoryview) -> tuple[Any, ...] | str:
-    """Decode a checksummed record body, or return why it is malformed."""
-    if len(body) < _BODY_FIXED.size:
-        return f"record body of {len(body)} bytes is shorter than its fixed part"
-    wall, mono, n, text_len = _BODY_FIXED.unpack_from(body, 0)
-    at = _BODY_FIXED.size
-    if at + text_len + 4 * n > len(body):
+def parse_body(kind: str, data: bytes, start: int, end: int) -> tuple[Any, ...] | str:
+    """Decode the checksummed record body ``data[start:end]``, or return why it is malformed.
+
+    Returns ``(kind, received_wall, received_mono, frames, text)`` with ``text`` ``None``
+    for accepted messages.
+    """
+    if end - start < _BODY_FIXED.size:
+        return f"record body of {end - start} bytes is shorter than its fixed part"
+    wall, mono, n, text_len = _BODY_FIXED.unpack_from(data, start)
+    text_at = start + _BODY_FIXED.size
+    at = text_at + text_len
+    if at + 4 * n > end:
         return f"record body too short for {n} frames and {text_len} text bytes"
-    text_raw = body[at : at + text_len]
-    at += text_len
-    sizes = struct.unpack_from(f"<{n}I", body, at)
+    sizes = _sizes_struct(n).unpack_from(data, at)
     at += 4 * n
-    if at + sum(sizes) != len(body):
+    if at + sum(sizes) != end:
         return "frame lengths do not add up to the record length"
-    if kind == "accepted" and text_len:
-        return "accepted record carries a text field"
-    if kind == "annotation" and n:
-        return "annotation record carries frames"
+    if kind == "accepted":
+        if text_len:
+            return "accepted record carries a text field"
+        text = None
+    else:
+        if kind == "annotation" and n:
+            return "annotation record carries frames"
+        try:
+            text = data[text_at : text_at + text_len].decode("utf-8", _TEXT_ERRORS)
+        except UnicodeDecodeError as exc:
+            return f"record text is not UTF-8: {exc}"
     frames = []
-    for s in sizes:
-        frames.append(body[at : at + s].tobytes())
-        at += s
-    try:
-        text = text_raw.tobytes().decode("utf-8", _TEXT_ERRORS)
-    except UnicodeDecodeError as exc:
-        return f"record text is not UTF-8: {exc}"
-    return kind, wall, mono, tuple(frames), (text if kind != "accepted" else None)
+    for size in sizes:
+        frames.append(data[at : at + size])
+        at += size
+    return kind, wall, mono, tuple(frames), text

@@ -132,20 +132,30 @@ class _Window:
         self._data = b""
         self._view = memoryview(b"")
 
-    def get(self, pos: int, n: int) -> memoryview:
-        """Bytes ``[pos, pos + n)``, fewer at the end of the file."""
+    def load(self, pos: int, n: int) -> tuple[bytes, int, int]:
+        """``(data, off, avail)``: file bytes ``[pos, pos + avail)`` are
+        ``data[off : off + avail]``, with ``avail == n`` unless the file ends first."""
         n = max(0, min(n, self.size - pos))
-        start = pos - self._base
-        if start < 0 or start + n > len(self._data):
+        off = pos - self._base
+        if off < 0 or off + n > len(self._data):
             self._fh.seek(pos)
             self._data = self._fh.read(max(n, _READ_CHUNK))
             self._view = memoryview(self._data)
             self._base = pos
-            start = 0
+            off = 0
             if len(self._data) < n:  # the file shrank after it was opened
                 self.size = pos + len(self._data)
                 n = len(self._data)
-        return self._view[start : start + n]
+        return self._data, off, n
+
+    def get(self, pos: int, n: int) -> memoryview:
+        """Bytes ``[pos, pos + n)``, fewer at the end of the file."""
+        _, off, n = self.load(pos, n)
+        return self._view[off : off + n]
+
+    def view(self) -> memoryview:
+        """A memoryview of the data returned by the last :meth:`load`."""
+        return self._view
 
     def find(self, needle: bytes, pos: int) -> int:
         """Absolute offset of the first ``needle`` at or after ``pos``, or -1."""
@@ -378,20 +388,21 @@ class RecordReader:
         self._damaged = tuple(damaged)
 
     def _probe(self, pos: int) -> tuple[int, Any, int]:
+        """Classify the bytes at ``pos``: ``(outcome, value, end)``."""
         win = self._win
         remaining = win.size - pos
-        head = win.get(pos, _HEAD_SIZE)
-        if len(head) < _HEAD_SIZE:
-            k = min(len(SYNC_MARKER), len(head))
-            if head[:k] == SYNC_MARKER[:k]:
+        data, off, avail = win.load(pos, _HEAD_SIZE)
+        if avail < _HEAD_SIZE:
+            k = min(len(SYNC_MARKER), avail)
+            if data[off : off + k] == SYNC_MARKER[:k]:
                 return (
                     _TRUNC,
-                    f"file ends inside a record header ({len(head)} of {_HEAD_SIZE} bytes)",
+                    f"file ends inside a record header ({avail} of {_HEAD_SIZE} bytes)",
                     win.size,
                 )
             return _INVALID, None, pos
-        sync, body_len, code, head_crc = _REC_HEAD.unpack(head)
-        if sync != SYNC_MARKER or zlib.crc32(head[:12]) != head_crc:
+        sync, body_len, code, head_crc = _REC_HEAD.unpack_from(data, off)
+        if sync != SYNC_MARKER or zlib.crc32(data[off : off + 12]) != head_crc:
             return _INVALID, None, pos
         total = body_len + _OVERHEAD
         if total > remaining:
@@ -403,11 +414,12 @@ class RecordReader:
         end = pos + total
         if body_len > self._cap:
             return _SKIP, f"record body of {body_len} bytes exceeds max_record_bytes", end
-        rec = win.get(pos, total)
-        if len(rec) < total:
+        data, off, avail = win.load(pos, total)
+        if avail < total:
             return _TRUNC, "file shrank while being read", win.size
-        stored = _U32.unpack(rec[total - _CRC_SIZE :])[0]
-        computed = zlib.crc32(rec[: total - _CRC_SIZE])
+        body_end = off + total - _CRC_SIZE
+        stored = _U32.unpack_from(data, body_end)[0]
+        computed = zlib.crc32(win.view()[off:body_end])
         if stored != computed:
             return (
                 _SKIP,
@@ -417,7 +429,7 @@ class RecordReader:
         kind = _CODE_KINDS.get(code)
         if kind is None:
             return _SKIP, f"unknown record kind code {code}", end
-        parsed = parse_body(kind, rec[_HEAD_SIZE : total - _CRC_SIZE])
+        parsed = parse_body(kind, data, off + _HEAD_SIZE, body_end)
         if isinstance(parsed, str):
             return _SKIP, parsed, end
         return _OK, parsed, end

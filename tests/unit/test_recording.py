@@ -155,11 +155,14 @@ def test_frames_accept_any_bytes_like(tmp_path):
     path = tmp_path / "b.lwrec"
     import array
 
-    frames = [bytearray(b"ab"), memoryview(b"cde"), array.array("d", [1.5]), b"f"]
+    strided = memoryview(b"0123456789")[::3]  # not contiguous
+    frames = [bytearray(b"ab"), memoryview(b"cde"), array.array("d", [1.5]), strided, b"f"]
     with RecordWriter(path, flush_interval_s=0) as w:
         w.write(frames, received_wall=1.0, received_mono=2.0)
-    (r,) = read_records(path).records
-    assert r.frames == (b"ab", b"cde", struct.pack("d", 1.5), b"f")
+        w.write((f for f in [b"from", b"a generator"]), received_wall=1.0, received_mono=2.0)
+    r1, r2 = read_records(path).records
+    assert r1.frames == (b"ab", b"cde", struct.pack("d", 1.5), b"0369", b"f")
+    assert r2.frames == (b"from", b"a generator")
 
 
 def test_empty_recording_reads_clean(tmp_path):
