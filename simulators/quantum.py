@@ -43,7 +43,7 @@ class QuantumSource(ProbabilitySource):
 
     Parameters
     ----------
-    state : array_like
+    state_or_rho : array_like
         Unit state vector ``(d_A d_B,)`` or density matrix ``(d_A d_B, d_A d_B)``.
     bases_a, bases_b : array_like, shape (m, d, d)
         Analyzer bases per setting (columns are basis vectors).
@@ -66,7 +66,7 @@ class QuantumSource(ProbabilitySource):
 
     def __init__(
         self,
-        state: ArrayLike,
+        state_or_rho: ArrayLike,
         bases_a: ArrayLike,
         bases_b: ArrayLike,
         pair_rate_hz: float | None = None,
@@ -79,7 +79,7 @@ class QuantumSource(ProbabilitySource):
             det = dataclasses.replace(det, pair_rate_hz=pair_rate_hz)
         self.detector: DetectorModel = det
         self.keep_no_click = bool(keep_no_click)
-        self.state = as_density_matrix(state)
+        self.state = as_density_matrix(state_or_rho)
         self.bases_a = as_bases(bases_a)
         self.bases_b = as_bases(bases_b)
         self.born = born_probabilities(self.state, self.bases_a, self.bases_b, dims)

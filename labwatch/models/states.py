@@ -179,13 +179,13 @@ def _check_fraction(value: float, name: str) -> float:
 
 
 def with_white_noise(
-    state: ArrayLike, visibility: float, dims: Sequence[int] | None = None
+    rho: ArrayLike, visibility: float, dims: Sequence[int] | None = None
 ) -> NDArray[np.complex128]:
     """Isotropic (Werner-type) mixture ``V rho + (1 - V) I / (d_A d_B)``.
 
     Parameters
     ----------
-    state : array_like
+    rho : array_like
         State vector ``(D,)`` or density matrix ``(D, D)``, ``D = d_A d_B``.
     visibility : float
         ``V`` in ``[0, 1]``.
@@ -198,14 +198,14 @@ def with_white_noise(
     ndarray, shape (D, D)
     """
     v = _check_fraction(visibility, "visibility")
-    rho = as_density_matrix(state)
+    rho = as_density_matrix(rho)
     total = rho.shape[0]
     infer_dims(total, dims)
     return v * rho + (1.0 - v) * np.eye(total) / total
 
 
 def dephased(
-    state: ArrayLike, strength: float, dims: Sequence[int] | None = None
+    rho: ArrayLike, strength: float, dims: Sequence[int] | None = None
 ) -> NDArray[np.complex128]:
     """Coloured (dephasing) noise in the product computational basis.
 
@@ -216,7 +216,7 @@ def dephased(
 
     Parameters
     ----------
-    state : array_like
+    rho : array_like
         State vector or density matrix of dimension ``D = d_A d_B``.
     strength : float
         ``s`` in ``[0, 1]``; 1 removes all coherence.
@@ -224,6 +224,6 @@ def dephased(
         Local dimensions (checked; needed when ``D`` is not a perfect square).
     """
     s = _check_fraction(strength, "strength")
-    rho = as_density_matrix(state)
+    rho = as_density_matrix(rho)
     infer_dims(rho.shape[0], dims)
     return (1.0 - s) * rho + s * np.diag(np.diag(rho))
