@@ -114,6 +114,15 @@ def mutually_unbiased_bases(d: int) -> list[NDArray[np.complex128]]:
     ------
     NotPrimePowerError
         ``d`` is not a prime power (no complete set is known then).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> bases = mutually_unbiased_bases(4)
+    >>> len(bases)
+    5
+    >>> bool(np.allclose(abs(bases[1].conj().T @ bases[3]) ** 2, 1 / 4))
+    True
     """
     d = _check_dimension(d)
     try:
@@ -218,6 +227,13 @@ def chsh_bases(
     With the default half-wave-plate angles, ``S = E00 + E01 + E10 - E11 = 2 sqrt(2)``
     (:func:`labwatch.bell.chsh`), since ``E = cos 2(theta_A - theta_B)`` for ``|Phi+>``.
     Each array has shape ``(2, 2, 2)``.
+
+    Examples
+    --------
+    >>> from labwatch.bell import chsh
+    >>> from labwatch.models import maximally_entangled, probabilities
+    >>> round(chsh().evaluate(probabilities(maximally_entangled(2), *chsh_bases())).value, 6)
+    2.828427
     """
     (a0, a1), (b0, b1) = hwp_deg
     bases_a = np.stack([polarization_analyzer_basis(a0), polarization_analyzer_basis(a1)])
