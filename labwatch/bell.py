@@ -148,7 +148,7 @@ class BellFunctional:
         first = np.sum(self.coefficients * p, axis=(2, 3))
         second = np.sum(self.coefficients**2 * p, axis=(2, 3))
         with np.errstate(divide="ignore", invalid="ignore"):
-            var = np.where(n > 0, np.maximum(second - first**2, 0.0) / n, np.inf)
+            var = np.where(n > 0, np.maximum(second - first**2, 0.0) / n, np.nan)
         stderr = float(np.sqrt(np.sum(var)))
         return BellValue(
             value,
@@ -178,7 +178,9 @@ class BellFunctional:
         ``I <= L`` keeps its meaning; a nonzero bound becomes +-1.
         """
         scale = abs(self.local_bound) or 1.0
-        return BellFunctional(self.coefficients / scale, name=self.name, description=self.description)
+        return BellFunctional(
+            self.coefficients / scale, name=self.name, description=self.description
+        )
 
     def __repr__(self) -> str:
         return f"BellFunctional(name={self.name!r}, scenario={self.scenario})"
@@ -215,7 +217,11 @@ def chsh(minus: tuple[int, int] = (1, 1), sign: int = 1) -> BellFunctional:
         raise ValueError(f"minus must be one of (0,0), (0,1), (1,0), (1,1), got {minus!r}")
     signs = np.ones((2, 2))
     signs[minus] = -1.0
-    name = "CHSH" if (tuple(minus), sign) == ((1, 1), 1) else f"CHSH[-E{minus[0]}{minus[1]},{'+' if sign > 0 else '-'}]"
+    name = (
+        "CHSH"
+        if (tuple(minus), sign) == ((1, 1), 1)
+        else f"CHSH[-E{minus[0]}{minus[1]},{'+' if sign > 0 else '-'}]"
+    )
     return BellFunctional(
         sign * correlator_coefficients(signs),
         name=name,
@@ -269,7 +275,9 @@ def cglmp(d: int) -> BellFunctional:
     )
 
 
-def ch_eberhard(outcomes_a: int = 2, outcomes_b: int = 2, detect_a: int = 0, detect_b: int = 0) -> BellFunctional:
+def ch_eberhard(
+    outcomes_a: int = 2, outcomes_b: int = 2, detect_a: int = 0, detect_b: int = 0
+) -> BellFunctional:
     """The Clauser-Horne functional with the no-click events kept (Eberhard's form).
 
     ``CH = P(++|00) + P(++|01) + P(++|10) - P(++|11) - P_A(+|0) - P_B(+|0) <= 0``

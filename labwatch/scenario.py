@@ -120,7 +120,9 @@ class Scenario:
             raise ScenarioError("counts must be non-negative")
         return out
 
-    def check_probabilities(self, probabilities: ArrayLike, atol: float = 1e-8) -> NDArray[np.float64]:
+    def check_probabilities(
+        self, probabilities: ArrayLike, atol: float = 1e-8
+    ) -> NDArray[np.float64]:
         """Return ``probabilities`` as float64 after checking shape, sign and normalisation.
 
         Every setting pair ``(x, y)`` must sum to one over ``(a, b)`` within ``atol``.

@@ -48,7 +48,9 @@ class StrategyOptimum:
     strategy_b: tuple[int, ...]
 
 
-def party_strategies(settings: int, outcomes: int, start: int = 0, stop: int | None = None) -> NDArray[np.int64]:
+def party_strategies(
+    settings: int, outcomes: int, start: int = 0, stop: int | None = None
+) -> NDArray[np.int64]:
     """Deterministic strategies of one party as rows of an ``(n, settings)`` integer array.
 
     Strategy number ``k`` has outcome ``(k // outcomes**x) % outcomes`` for setting ``x``
@@ -61,7 +63,9 @@ def party_strategies(settings: int, outcomes: int, start: int = 0, stop: int | N
     return (k[:, None] // powers[None, :]) % outcomes
 
 
-def _best_response_values(coefficients: NDArray[np.float64], strategies: NDArray[np.int64]) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
+def _best_response_values(
+    coefficients: NDArray[np.float64], strategies: NDArray[np.int64]
+) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
     """For each Alice strategy (rows), the best total value and Bob's best response.
 
     ``coefficients`` has shape ``(m_A, m_B, d_A, d_B)``.  Returns ``values`` of shape ``(n,)``
@@ -121,7 +125,9 @@ def maximize_over_strategies(coefficients: ArrayLike) -> StrategyOptimum:
     return StrategyOptimum(value=best_value, strategy_a=sa, strategy_b=sb)
 
 
-def vertex_tensor(strategy_a: ArrayLike, strategy_b: ArrayLike, outcomes_a: int, outcomes_b: int) -> NDArray[np.float64]:
+def vertex_tensor(
+    strategy_a: ArrayLike, strategy_b: ArrayLike, outcomes_a: int, outcomes_b: int
+) -> NDArray[np.float64]:
     """The local-polytope vertex of one deterministic strategy pair, shape ``(m_A, m_B, d_A, d_B)``."""
     sa = np.asarray(strategy_a, dtype=np.int64)
     sb = np.asarray(strategy_b, dtype=np.int64)
