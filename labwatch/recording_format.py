@@ -258,17 +258,25 @@ def encode_record(
     if body_len > cap:
         raise RecordInputError(f"record body of {body_len} bytes exceeds max_record_bytes={cap}")
     head12 = _REC_HEAD12.pack(SYNC_MARKER, body_len, _KIND_CODES[kind])
-    rec = b"".join(
+    prefix = b"".join(
         (
             head12,
             _U32.pack(zlib.crc32(head12)),
             _BODY_FIXED.pack(wall, mono, n, len(text)),
             text,
             _sizes_struct(n).pack(*sizes),
-            *(frames if parts is None else parts),
         )
     )
-    return rec + _U32.pack(zlib.crc32(rec))
+    if parts is None:
+        parts = frames
+    if body_len < 16384:  # small: fewer calls beat fewer copies
+        rec = b"".join((prefix, *parts))
+        return rec + _U32.pack(zlib.crc32(rec))
+    # large: one pass over the frames for the CRC and a single copy into the record
+    crc = zlib.crc32(prefix)
+    for part in parts:
+        crc = zlib.crc32(part, crc)
+    return b"".join((prefix, *parts, _U32.pack(crc)))
 
 
 def check_time(name: str, value: Any) -> float:

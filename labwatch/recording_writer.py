@@ -202,6 +202,10 @@ class _Sink:
     def flush(self, raise_errors: bool, fsync: bool = False) -> None:
         with self.io_lock:
             with self.cond:
+                if self.closing:
+                    if raise_errors:
+                        self.check()
+                    return
                 if self.error is not None:
                     if raise_errors:
                         raise self.failure()
@@ -219,7 +223,7 @@ class _Sink:
         done = 0
         try:
             while done < len(data):
-                done += os.write(self.fd, view[done:])
+                done += _write_some(self.fd, view[done:])
         except Exception as exc:  # noqa: BLE001 - the writer must never crash its caller
             self._fail(exc)
             if raise_errors:
@@ -278,7 +282,8 @@ class _Sink:
                     if self.error is not None:
                         return
         except BaseException as exc:  # noqa: BLE001 - keep failures out of threading.excepthook
-            self._fail(exc)
+            with self.io_lock:
+                self._fail(exc)
 
     # -- shutdown
 
@@ -402,7 +407,7 @@ class RecordWriter:
             view = memoryview(header)
             done = 0
             while done < len(header):
-                done += os.write(fd, view[done:])
+                done += _write_some(fd, view[done:])
             if regular:
                 os.fsync(fd)
                 _fsync_dir(self._path)
@@ -576,6 +581,14 @@ class RecordWriter:
         s = self.stats
         state = "failed" if s.failed else ("closed" if self.closed else "open")
         return f"RecordWriter({self._path!r}, {state}, records_written={s.records_written})"
+
+
+def _write_some(fd: int, data: memoryview) -> int:
+    """``os.write`` that treats a zero-byte write as an I/O error (it would loop forever)."""
+    n = os.write(fd, data)
+    if n <= 0:
+        raise OSError(errno.EIO, "write() wrote nothing")
+    return n
 
 
 def _fsync_dir(path: str) -> None:

@@ -200,6 +200,8 @@ def test_bad_input_is_rejected_and_writer_keeps_working(tmp_path):
     assert [r.frames for r in read_records(path).records] == [(b"ok",)]
     with pytest.raises(ValueError, match="is closed"):
         w.write([b"late"], **t)
+    with pytest.raises(ValueError, match="is closed"):
+        w.flush()
     w.close()  # idempotent
 
 
@@ -229,6 +231,27 @@ def test_existing_file_is_refused_and_left_alone(tmp_path):
     assert isinstance(info.value, FileExistsError) and isinstance(info.value, RecordingError)
     assert info.value.errno == errno.EEXIST
     assert path.read_bytes() == before
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="needs POSIX FIFOs")
+def test_recording_into_a_fifo(tmp_path):
+    fifo = tmp_path / "pipe"
+    os.mkfifo(fifo)
+    copy = tmp_path / "copy.lwrec"
+
+    def drain() -> None:
+        with open(fifo, "rb") as src, open(copy, "wb") as dst:
+            shutil.copyfileobj(src, dst)
+
+    reader = threading.Thread(target=drain)
+    reader.start()
+    items = _small_items()
+    _write_all(fifo, items, flush_interval_s=0.01)
+    reader.join(10)
+    rec = read_records(copy)
+    assert rec.intact
+    for record, item in zip(rec.records, items, strict=True):
+        _assert_matches(record, item)
 
 
 def test_unwritable_location_gives_recording_error(tmp_path):
