@@ -336,14 +336,14 @@ class RecordReader:
 
     def __iter__(self) -> Iterator[Record]:
         win = self._win
-        size = win.size
         pos = self.header.size
         index = 0
         damaged: list[DamagedRegion] = []
         self._damaged, self._tail = (), None
         while True:
+            size = win.size  # shrinks if the file is cut while being read
             if pos >= size:
-                self._tail = TailReport("clean", size, 0, size, "file ends after an intact record")
+                self._tail = TailReport("clean", size, 0, size, "file ends on a record boundary")
                 break
             outcome, value, end = self._probe(pos)
             if outcome == _OK:
@@ -368,6 +368,7 @@ class RecordReader:
                 pos = end
                 continue
             if outcome == _TRUNC:
+                size = win.size
                 self._tail = TailReport("truncated", pos, size - pos, size, value)
                 break
             # No record header here: scan for the next plausible one.
