@@ -14,7 +14,7 @@ from typing import Any
 
 from labwatch.engine import MonitorEngine
 from labwatch.snapshot import Snapshot, StreamHealth
-from labwatch.transport import AsyncSubscriber, SocketOptions, Subscriber
+from labwatch.transport import AsyncSubscriber, LinkState, SocketOptions, Subscriber
 
 __all__ = ["LiveSession", "TickCallback"]
 
@@ -35,7 +35,8 @@ class LiveSession:
         Anything with ``write(frames, *, received_wall, received_mono, rejected_reason)`` and
         ``annotate(text, ...)`` (e.g. :class:`labwatch.recording.RecordWriter`).  A failing
         recorder (disk full, ...) is detached with its error kept in ``recording_error``;
-        monitoring goes on.
+        monitoring goes on.  A message the recorder refuses as too large is replaced by an
+        annotation saying so (counted in ``not_recorded``).
     options : SocketOptions, optional
     curve : object, optional
         CurveZMQ client keys (``apply_client(socket)``).
@@ -57,11 +58,17 @@ class LiveSession:
         self.curve = curve
         self.stopped = False
         self.recorded = 0
+        self.not_recorded = 0
+        self.link = LinkState()
 
     # ------------------------------------------------------------------ shared
-    def handle(self, frames: list[bytes]) -> None:
-        """Ingest one received message and record it (accepted or with its rejection)."""
-        wall = time.time()
+    def handle(self, frames: list[bytes], wall: float | None = None) -> None:
+        """Ingest one received message and record it (accepted or with its rejection).
+
+        ``wall`` is the receive time (``time.time()``, taken now when None).
+        """
+        if wall is None:
+            wall = time.time()
         result = self.engine.ingest(frames, wall)
         if self.recorder is not None:
             reason = (
@@ -78,8 +85,21 @@ class LiveSession:
                 )
                 self.recorded += 1
             except OSError as exc:
-                self.recording_error = f"recording stopped: {exc}"
-                self.recorder = None
+                self._recorder_failed(exc)
+            except ValueError as exc:  # the recorder refuses this message (e.g. too large)
+                self.not_recorded += 1
+                try:
+                    self.recorder.annotate(
+                        f"message not recorded: {exc}"[:500],
+                        received_wall=wall,
+                        received_mono=time.monotonic(),
+                    )
+                except OSError as err:
+                    self._recorder_failed(err)
+
+    def _recorder_failed(self, exc: OSError) -> None:
+        self.recording_error = f"recording stopped: {exc}"
+        self.recorder = None
 
     def new_run(self) -> None:
         """Restart the cumulative counts by hand (the recording keeps a marker)."""
@@ -89,8 +109,7 @@ class LiveSession:
                     "new_run", received_wall=time.time(), received_mono=time.monotonic()
                 )
             except OSError as exc:
-                self.recording_error = f"recording stopped: {exc}"
-                self.recorder = None
+                self._recorder_failed(exc)
         self.engine.new_run()
 
     def stop(self) -> None:
@@ -114,8 +133,12 @@ class LiveSession:
                 if now - start >= duration_s:
                     break
                 wait = min(next_tick, start + duration_s) - now
-                for frames in sub.recv_batch(max(wait, 0.0)):
-                    self.handle(frames)
+                batch = sub.recv_batch(max(wait, 0.0))
+                if batch:
+                    wall = time.time()
+                    for frames in batch:
+                        self.handle(frames, wall)
+                self.link = sub.link
                 if time.monotonic() >= next_tick:
                     next_tick += tick_s
                     if on_tick is not None and on_tick(self.engine.latest, self.engine.health()):
@@ -142,8 +165,11 @@ class LiveSession:
                 if now - start >= duration_s:
                     break
                 batch = await sub.recv_batch(max(min(next_tick, start + duration_s) - now, 0.0))
-                for frames in batch:
-                    self.handle(frames)
+                if batch:
+                    wall = time.time()
+                    for frames in batch:
+                        self.handle(frames, wall)
+                self.link = sub.link
                 if time.monotonic() >= next_tick:
                     next_tick = time.monotonic() + tick_s
                     if on_tick is not None and on_tick(self.engine.latest, self.engine.health()):
