@@ -120,6 +120,11 @@ class RunAccumulator:
         Cumulative singles (summed over each party's detectors).
     random_settings : bool
         True once the run delivered per-trial events.
+    clock_jumps : int
+        Discontinuities of the source clock seen in this run: ``clock_jumps_backward`` (a
+        message ending more than one window bin before the previous one) plus
+        ``clock_jumps_forward`` (a message starting more than ``window_s`` after the previous
+        one ended).  Each empties the rolling window; cumulative counts are kept.
     """
 
     def __init__(
@@ -149,14 +154,27 @@ class RunAccumulator:
         self.random_settings = False
         self.block_settings = False
         self.setting_probabilities: NDArray[np.float64] | None = None
-        self.clock_jumps = 0
+        self.clock_jumps_backward = 0
+        self.clock_jumps_forward = 0
+        self._t_prev: float | None = None  # t_stop of the previous message (jump detection)
+
+    @property
+    def clock_jumps(self) -> int:
+        """Backward plus forward source-clock jumps in this run."""
+        return self.clock_jumps_backward + self.clock_jumps_forward
 
     def add(self, batch: CountBatch) -> None:
         """Fold one accepted batch into the run (the batch's scenario must match)."""
-        if self.t_last is not None and batch.t_stop < self.t_last - self.window.bin_width:
+        prev = self._t_prev
+        if prev is not None and batch.t_stop < prev - self.window.bin_width:
             # source clock went backwards: keep cumulative counts, restart the window
-            self.clock_jumps += 1
+            self.clock_jumps_backward += 1
             self.window.reset()
+        elif prev is not None and batch.t_start > prev + self.window.window_s:
+            # forward by more than a window: nothing in the window is recent any more
+            self.clock_jumps_forward += 1
+            self.window.reset()
+        self._t_prev = batch.t_stop
         live = max(0.0, batch.t_stop - batch.t_start)
         singles = (0, 0)
         if batch.singles is not None:

@@ -109,6 +109,7 @@ class MonitorEngine:
         self.recent: deque[RejectionNote] = deque(maxlen=self.config.recent_rejections)
         self.source_state: str | None = None
         self.last_message_wall: float | None = None
+        self.last_data_wall: float | None = None
         self.last_heartbeat_wall: float | None = None
         self.last_status: SourceStatus | None = None
         self.source: str | None = self.config.source
@@ -182,9 +183,17 @@ class MonitorEngine:
                 snaps.extend(self._close_epoch())
             self._start_run(batch.source, batch.run, batch.scenario, batch.t_start)
         assert self.run is not None and self._epoch_counts is not None
+        jumps = self.run.clock_jumps
         self.run.add(batch)
-        self._epoch_counts += batch.counts
         self.accepted += 1
+        self.last_data_wall = wall
+        if self.run.clock_jumps != jumps:
+            # the source clock jumped: close the epoch so far and cut epochs from the new time
+            # (a backward jump would otherwise hold back every snapshot until it caught up)
+            snaps.extend(self._close_epoch())
+            self._epoch_origin = batch.t_start
+            self._next_epoch_t = batch.t_start + self.config.epoch_s
+        self._epoch_counts += batch.counts
         if batch.t_stop >= self._next_epoch_t:
             snaps.extend(self._close_epoch())
             k = math.floor((batch.t_stop - self._epoch_origin) / self.config.epoch_s) + 1
@@ -192,6 +201,8 @@ class MonitorEngine:
         return IngestResult(True, batch.kind, snapshots=tuple(snaps))
 
     def _start_run(self, source: str, run: str, scenario, t0: float) -> None:
+        if self.run is not None:
+            self.closed_clock_jumps += self.run.clock_jumps
         self.run = RunAccumulator(
             source, run, scenario, self.config.window_s, t0, index=self.runs_seen
         )
@@ -208,13 +219,31 @@ class MonitorEngine:
         snaps = self._close_epoch()
         old = self.run
         t0 = old.t_last if old.t_last is not None else old.started_at
-        self.closed_clock_jumps += old.clock_jumps
         self._start_run(old.source, old.run, old.scenario, t0)
         return snaps
 
     def flush(self) -> tuple[Snapshot, ...]:
         """Close the current epoch now (end of stream or of a replay)."""
         return self._close_epoch()
+
+    # ------------------------------------------------------------------ watchdog
+    def silence_s(self, now: float) -> float | None:
+        """Seconds since the last message of any kind, on the caller's wall clock ``now``.
+
+        None before the first message.  The engine keeps no clock: ``now`` must be on the same
+        clock as the ``received_wall`` values given to :meth:`ingest` (``time.time()`` live).
+        """
+        last = self.last_message_wall
+        if last is None or not math.isfinite(last):
+            return None
+        return max(0.0, now - last)
+
+    def data_silence_s(self, now: float) -> float | None:
+        """Seconds since the last accepted data message (heartbeats do not count), or None."""
+        last = self.last_data_wall
+        if last is None or not math.isfinite(last):
+            return None
+        return max(0.0, now - last)
 
     # ------------------------------------------------------------------ snapshots
     def health(self) -> StreamHealth:

@@ -7,12 +7,30 @@ from typing import Any
 
 from labwatch.snapshot import Snapshot, StreamHealth, to_jsonable
 
-__all__ = ["health_dict", "summary_dict", "status_line"]
+__all__ = ["DEFAULT_SILENCE_S", "health_dict", "silence_s", "summary_dict", "status_line"]
+
+#: A stream quiet for this many wall seconds is shown as "NO DATA" (the simulator sends data
+#: every 0.1 s and a heartbeat every second; protocol v1 asks for one every few seconds).
+DEFAULT_SILENCE_S = 3.0
 
 
-def health_dict(h: StreamHealth) -> dict[str, Any]:
-    """Stream-health counters as a JSON-able dict."""
-    return {
+def silence_s(h: StreamHealth, now: float) -> float | None:
+    """Wall seconds since the last message of any kind (``now`` on the receive clock), or None.
+
+    None before the first message (or when the receive times are unknown).
+    """
+    last = h.last_message_wall
+    if last is None or not math.isfinite(last):
+        return None
+    return max(0.0, now - last)
+
+
+def health_dict(h: StreamHealth, now: float | None = None) -> dict[str, Any]:
+    """Stream-health counters as a JSON-able dict.
+
+    With ``now`` (wall clock, s) it also holds ``silence_s``: seconds since the last message.
+    """
+    out = {
         "messages": h.messages,
         "accepted": h.accepted,
         "rejected": h.rejected,
@@ -30,6 +48,9 @@ def health_dict(h: StreamHealth) -> dict[str, Any]:
         "heartbeats": h.heartbeats,
         "source_state": h.source_state,
     }
+    if now is not None:
+        out["silence_s"] = to_jsonable(silence_s(h, now))
+    return out
 
 
 def _bell(v: Any) -> dict[str, Any] | None:
@@ -46,14 +67,17 @@ def _bell(v: Any) -> dict[str, Any] | None:
     )
 
 
-def summary_dict(snapshot: Snapshot | None, health: StreamHealth) -> dict[str, Any]:
+def summary_dict(
+    snapshot: Snapshot | None, health: StreamHealth, now: float | None = None
+) -> dict[str, Any]:
     """The figures of the latest snapshot plus stream health, as one JSON-able dict.
 
     Top-level keys always present: ``messages``, ``rejected``, ``gaps``, ``coincidences``,
     ``chsh`` (``{"value", "stderr", ...}``; values null when the stream is not CHSH-shaped or
-    had no data), ``bell`` (the selected functional), ``health`` and ``figures``.
+    had no data), ``bell`` (the selected functional), ``health`` and ``figures``; with ``now``
+    also ``silence_s`` (see :func:`health_dict`).
     """
-    out: dict[str, Any] = health_dict(health)
+    out: dict[str, Any] = health_dict(health, now)
     out["coincidences"] = 0 if snapshot is None else snapshot.trials
     out["chsh"] = {"value": None, "stderr": None}
     out["bell"] = None
@@ -95,13 +119,28 @@ def _num(v: float | None, fmt: str = ".4f") -> str:
     return format(v, fmt)
 
 
-def status_line(snapshot: Snapshot | None, health: StreamHealth) -> str:
-    """One console line: rate, Bell value ± σ, margin, rejections, gaps."""
+def status_line(
+    snapshot: Snapshot | None,
+    health: StreamHealth,
+    now: float | None = None,
+    silence_after_s: float = DEFAULT_SILENCE_S,
+) -> str:
+    """One console line: rate, Bell value ± σ, margin, rejections, gaps.
+
+    With ``now`` (wall clock of the receive times, s), a stream silent for at least
+    ``silence_after_s`` seconds starts the line with ``NO DATA for N s`` (the figures after it
+    are the last ones known).
+    """
     parts = [f"msgs {health.messages}", f"rej {health.rejected}", f"gaps {health.gaps}"]
     if health.missing:
         parts.append(f"missing {health.missing}")
+    quiet = None if now is None else silence_s(health, now)
+    alarm = []
+    if quiet is not None and quiet >= silence_after_s:
+        state = f"; source last said {health.source_state!r}" if health.source_state else ""
+        alarm = [f"NO DATA for {quiet:.0f} s{state}"]
     if snapshot is None:
-        return "waiting for data | " + " | ".join(parts)
+        return " | ".join(alarm + ["waiting for data"] + parts)
     head = [f"run {snapshot.run}", f"{_num(snapshot.rates.coincidence_hz, '.0f')} c/s"]
     if snapshot.bell is not None:
         b = snapshot.bell
@@ -117,4 +156,4 @@ def status_line(snapshot: Snapshot | None, health: StreamHealth) -> str:
     target = snapshot.extras.get("target")
     if isinstance(target, dict) and target.get("met"):
         head.append("TARGET MET")
-    return " | ".join(head + parts)
+    return " | ".join(alarm + head + parts)
