@@ -70,7 +70,10 @@ def _add_simulate(sub: argparse._SubParsersAction) -> None:
         help="extra half-wave-plate rotation on Bob, degrees (polarization source)",
     )
     p.add_argument(
-        "--rate", type=_positive, default=50000.0, help="emitted pairs per second (default 50000); detected coincidences are fewer by the efficiencies"
+        "--rate",
+        type=_positive,
+        default=50000.0,
+        help="emitted pairs per second (default 50000); detected coincidences are fewer by the efficiencies",
     )
     p.add_argument(
         "--efficiency",
@@ -134,6 +137,12 @@ def _add_simulate(sub: argparse._SubParsersAction) -> None:
         default=None,
         help="bind a control (stop) socket here, e.g. tcp://127.0.0.1:5781",
     )
+    p.add_argument(
+        "--sndhwm",
+        type=int,
+        default=100_000,
+        help="send high-water mark: messages queued per monitor before drops (default 100000)",
+    )
     p.add_argument("--source-id", default="sim", help="source id in the headers (default sim)")
     p.add_argument("--run-id", default=None, help="run id (default: made from seed and clock)")
     _add_security(p, server=True)
@@ -194,7 +203,18 @@ def _add_watch(sub: argparse._SubParsersAction) -> None:
         default=None,
         help="the source's control endpoint (default: publisher port + 1)",
     )
-    p.add_argument("--record", default=None, help="record every received message to this file")
+    p.add_argument(
+        "--record",
+        default=None,
+        help="record every received message to this new file; if recording fails mid-run "
+        "(disk full) monitoring goes on, the error is shown and the exit code is 3",
+    )
+    p.add_argument(
+        "--silence",
+        type=_positive,
+        default=3.0,
+        help="show NO DATA when nothing arrived for this many wall seconds (default 3)",
+    )
     p.add_argument("--quiet", action="store_true", help="no status lines")
     _add_security(p, server=False)
 

@@ -18,6 +18,8 @@ def publisher_config_from_args(args: argparse.Namespace):
         from labwatch.security import ServerKeys
 
         server_keys = ServerKeys(args.server_key, args.allowed_keys)
+    elif getattr(args, "allowed_keys", None):
+        raise ValueError("--allowed-keys needs --server-key (this source's .key_secret file)")
     return PublisherConfig(
         endpoint=args.endpoint,
         source_id=args.source_id,
@@ -31,6 +33,7 @@ def publisher_config_from_args(args: argparse.Namespace):
         faults=parse_faults(args.faults),
         control_endpoint=args.control,
         server_keys=server_keys,
+        sndhwm=getattr(args, "sndhwm", 100_000),
     )
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import sys
 import time
@@ -13,7 +14,7 @@ from labwatch.analysis import AnalysisConfig
 from labwatch.bell import BellFunctional
 from labwatch.engine import EngineConfig, MonitorEngine
 from labwatch.session import LiveSession
-from labwatch.summary import status_line, summary_dict
+from labwatch.summary import DEFAULT_SILENCE_S, status_line, summary_dict
 from labwatch.transport import check_endpoint
 
 __all__ = ["run_watch", "functional_option"]
@@ -38,9 +39,14 @@ def engine_from_args(args: argparse.Namespace) -> MonitorEngine:
 
 
 def run_watch(args: argparse.Namespace) -> int:
-    """Run the watch command; exit code 0 unless the endpoint or options are bad."""
+    """Run the watch command.
+
+    Exit code 0, or 3 when a requested recording failed during the run (the figures are still
+    printed; ``recording_error`` says what happened).  Bad endpoints or options raise.
+    """
     check_endpoint(args.endpoint)
     engine = engine_from_args(args)
+    curve = client_keys_from_args(args)
     recorder = None
     if args.record:
         from labwatch.recording import RecordWriter
@@ -48,21 +54,21 @@ def run_watch(args: argparse.Namespace) -> int:
         recorder = RecordWriter(
             args.record, metadata={"endpoint": args.endpoint, "command": "watch"}
         )
-    session = LiveSession(
-        args.endpoint, engine, recorder=recorder, curve=client_keys_from_args(args)
-    )
+    session = LiveSession(args.endpoint, engine, recorder=recorder, curve=curve)
     started = time.time()
+    silence_after = getattr(args, "silence", DEFAULT_SILENCE_S)
     stopper = None
     if args.stop_source:
         from labwatch.control import StopOnTarget
 
-        stopper = StopOnTarget(
-            args.control or _control_default(args.endpoint), curve=client_keys_from_args(args)
-        )
+        stopper = StopOnTarget(args.control or _control_default(args.endpoint), curve=curve)
 
     def tick(snapshot, health) -> bool:
         if not args.quiet:
-            line = status_line(snapshot, health)
+            line = status_line(snapshot, health, now=time.time(), silence_after_s=silence_after)
+            link = session.link
+            if link.handshake_failures and not link.connected:
+                line += f" | {link.last_problem}"
             if session.recording_error:
                 line += f" | {session.recording_error}"
             print(line, file=sys.stderr if args.json else sys.stdout, flush=True)
@@ -79,18 +85,29 @@ def run_watch(args: argparse.Namespace) -> int:
         final = session.run_blocking(args.duration, on_tick=tick)
     finally:
         if recorder is not None:
-            recorder.close()
-    out = summary_dict(final, engine.health())
-    out["wall_time_s"] = time.time() - started
+            try:
+                recorder.close()
+            except OSError as exc:  # the failure surfaced only at the final flush
+                if session.recording_error is None:
+                    session.recording_error = f"recording stopped: {exc}"
+    now = time.time()
+    out = summary_dict(final, engine.health(), now=now)
+    out["wall_time_s"] = now - started
+    out["source_silent"] = bool(out["silence_s"] is None or out["silence_s"] >= silence_after)
+    out["link"] = dataclasses.asdict(session.link)
     target = out.get("target")
     out["target_met"] = bool(isinstance(target, dict) and target.get("met"))
     if stopper is not None:
         out["stop_command"] = stopper.result
+    if recorder is not None:
+        out["recorded"] = session.recorded
+        out["not_recorded"] = session.not_recorded
     if session.recording_error:
         out["recording_error"] = session.recording_error
+        print(f"labwatch watch: {session.recording_error}", file=sys.stderr, flush=True)
     if args.json:
         print(json.dumps(out, allow_nan=False))
-    return 0
+    return 3 if session.recording_error else 0
 
 
 def _control_default(endpoint: str) -> str:
@@ -101,6 +118,8 @@ def _control_default(endpoint: str) -> str:
 def client_keys_from_args(args: argparse.Namespace):
     """CurveZMQ client keys from ``--server-public-key``/``--client-key``, or None."""
     if getattr(args, "server_public_key", None) is None:
+        if getattr(args, "client_key", None) is not None:
+            raise ValueError("--client-key needs --server-public-key (the source's .key file)")
         return None
     from labwatch.security import ClientKeys
 

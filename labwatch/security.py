@@ -94,8 +94,14 @@ class ServerKeys:
         sock.curve_publickey = self.public
         sock.curve_server = True
 
-    def stop(self) -> None:
-        """Stop the authenticator threads."""
-        for auth in self._authenticators.values():
-            auth.stop()
-        self._authenticators.clear()
+    def stop(self, context: zmq.Context | None = None) -> None:
+        """Stop the authenticator thread of ``context`` (all of them when None).
+
+        Call this before ``context.term()``: the authenticator's socket would keep ``term``
+        waiting forever.
+        """
+        keys = list(self._authenticators) if context is None else [id(context)]
+        for key in keys:
+            auth = self._authenticators.pop(key, None)
+            if auth is not None:
+                auth.stop()

@@ -49,7 +49,12 @@ class PublisherConfig:
     speed : float
         Source seconds per wall second (1: real time; ``math.inf``: as fast as possible).
     control_endpoint : str or None
-        REP socket for stop commands (docs/protocol.md, "Control channel").
+        ROUTER socket for stop commands (docs/protocol.md, "Control channel").
+    server_keys : labwatch.security.ServerKeys or None
+        CurveZMQ: encrypt both sockets and admit only the authorised monitor keys.
+    sndhwm : int
+        Send high-water mark of the PUB socket (messages queued per subscriber before PUB
+        drops them silently; the sequence numbers make the drops visible).
     """
 
     endpoint: str = "tcp://127.0.0.1:5780"
@@ -69,6 +74,7 @@ class PublisherConfig:
     control_endpoint: str | None = None
     server_keys: object | None = None
     control_authorizer: object | None = None
+    sndhwm: int = 100_000
 
     def __post_init__(self) -> None:
         if self.settings not in SETTING_MODES:
@@ -160,6 +166,7 @@ class Publisher:
         self.config = config
         self.log = log or (lambda s: None)
         self.sent = 0
+        self.last_seq = -1
         self.stopped_by_command = False
         self.run_id = (
             config.run_id or f"{config.source_id}-s{config.seed}-{int(time.time() * 1000) % 10**10}"
@@ -185,14 +192,14 @@ class Publisher:
                     "ok": True,
                     "state": "stopping",
                     "run": self.run_id,
-                    "last_seq": self.sent - 1,
+                    "last_seq": self.last_seq,
                 }
             elif isinstance(cmd, dict) and cmd.get("command") == "status":
                 reply = {
                     "ok": True,
                     "state": "running",
                     "run": self.run_id,
-                    "last_seq": self.sent - 1,
+                    "last_seq": self.last_seq,
                 }
             ctl.send_multipart(frames[:-1] + [json.dumps(reply).encode()])
         return stop
@@ -203,7 +210,7 @@ class Publisher:
         ctx = zmq.Context()
         pub = ctx.socket(zmq.PUB)
         pub.setsockopt(zmq.LINGER, 0)
-        pub.setsockopt(zmq.SNDHWM, 100_000)
+        pub.setsockopt(zmq.SNDHWM, cfg.sndhwm)
         if cfg.server_keys is not None:
             cfg.server_keys.apply_server(pub)  # type: ignore[attr-defined]
         ctl = None
@@ -222,6 +229,9 @@ class Publisher:
             pub.close(0)
             if ctl is not None:
                 ctl.close(0)
+            if cfg.server_keys is not None:
+                # the authenticator's ZAP socket lives on ctx: term() would wait for it forever
+                cfg.server_keys.stop(ctx)  # type: ignore[attr-defined]
             ctx.term()
         return self.sent
 
@@ -246,14 +256,20 @@ class Publisher:
                 if delay > 0:
                     time.sleep(min(delay, 0.05))
                     continue
+            shift = faults.clock_offset(seq) if faults.clock_jumps else 0.0
             if t >= next_beat and not faults.garbage_only:
                 pub.send_multipart(
                     encode_status(
-                        source=cfg.source_id, run=self.run_id, t=t, state=state, last_seq=seq - 1
+                        source=cfg.source_id,
+                        run=self.run_id,
+                        t=t + shift,
+                        state=state,
+                        last_seq=seq - 1,
                     )
                 )
                 next_beat += cfg.heartbeat_s
-            frames = generate_message(self.source, cfg, rng, self.run_id, seq, t, q)
+            frames = generate_message(self.source, cfg, rng, self.run_id, seq, t + shift, q)
+            self.last_seq = seq
             seq += 1
             t += cfg.message_interval_s
             if faults.garbage_only:
@@ -278,9 +294,14 @@ class Publisher:
             pub.send_multipart(held)
             self.sent += 1
         if not faults.garbage_only:
+            shift = faults.clock_offset(seq) if faults.clock_jumps else 0.0
             pub.send_multipart(
                 encode_status(
-                    source=cfg.source_id, run=self.run_id, t=t, state="stopped", last_seq=seq - 1
+                    source=cfg.source_id,
+                    run=self.run_id,
+                    t=t + shift,
+                    state="stopped",
+                    last_seq=seq - 1,
                 )
             )
         time.sleep(0.2)  # let the last frames leave before the socket closes
