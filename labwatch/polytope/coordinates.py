@@ -29,6 +29,7 @@ __all__ = [
     "cg_dimension",
     "from_cg",
     "functional_from_cg",
+    "functional_to_cg",
     "party_dimension",
     "party_vectors",
     "to_cg",
@@ -148,3 +149,12 @@ def functional_from_cg(y: NDArray[np.float64], scenario: Scenario) -> NDArray[np
     s_b, _ = _selectors(scenario.settings_b, scenario.outcomes_b)
     mat = np.asarray(y, dtype=np.float64).reshape(s_a.shape[0], s_b.shape[0])
     return _as_tensor(s_a.T @ mat @ s_b, scenario)
+
+
+def functional_to_cg(coefficients: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Coordinates ``y = R^T beta`` with ``y . C(p) == sum(beta * p)`` for no-signalling ``p``."""
+    beta = np.asarray(coefficients, dtype=np.float64)
+    scenario = Scenario.from_shape(beta.shape)
+    _, t_a = _selectors(scenario.settings_a, scenario.outcomes_a)
+    _, t_b = _selectors(scenario.settings_b, scenario.outcomes_b)
+    return (t_a.T @ _as_matrix(beta) @ t_b).ravel()

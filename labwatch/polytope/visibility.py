@@ -40,12 +40,16 @@ Column generation
 Above ``max_enumerated_vertices`` vertices the LP keeps only some vertex columns (a restricted
 master).  Its duals ``y`` are a functional on the coordinates; the pricing oracle
 (:func:`labwatch.polytope.pricing.best_vertices`, exact: enumerate the smaller party, best
-response for the other) finds the vertices with the largest ``F(D) = -(reduced cost)``.  They
-are added until ``max F(D) <= tolerance``.  With ``delta = max F(D)`` the scaled dual
-``(y - delta e_0) / (1 + delta)`` is feasible for the full LP, which bounds the optimum:
-``t^* >= (t - delta) / (1 + delta)``; ``visibility_upper`` reports that bound.  The master
-starts from vertices whose average is the uniform point and which span the coordinate space,
-so it is feasible for any data.
+response for the other) finds the vertices with the largest ``F(D) = -(reduced cost)``; they
+enter the master until none improves it.  Every priced functional ``F`` also proves a bound:
+with ``delta = max_D F(D)`` (exact), ``I = (F - F(n)) / (delta - F(n))`` is a valid
+inequality (local bound 1, noise 0), so ``v^* <= 1 / I(p)``; the master's own value is a
+lower bound (it is a feasible mixture).  We stop when the two meet within ``tolerance``
+(relative) or no column improves the master, and report the bound as ``visibility_upper``
+and the best ``I`` as the certificate.  Pricing uses a point between the best functional so
+far and the master's duals (Wentges smoothing).  The master starts from vertices whose
+average is the uniform point and which span the coordinate space (so it is feasible for any
+data), plus the vertices scoring best on ``p - noise``.
 """
 
 from __future__ import annotations
@@ -62,6 +66,7 @@ from labwatch.polytope._highs import INF, SolverError, as_index, new_model, solv
 from labwatch.polytope.coordinates import (
     cg_dimension,
     functional_from_cg,
+    functional_to_cg,
     to_cg,
     vertex_columns,
 )
@@ -262,14 +267,21 @@ class VisibilitySolver:
     v_max : float
         Cap on the visibility (``> 1``).
     tolerance : float
-        Column-generation stopping tolerance on ``max F(D)`` and the LP feasibility
-        tolerances; the visibility is then accurate to about ``tolerance`` (relative).
+        LP feasibility tolerances, and the column-generation stop: the relative gap between
+        the master's visibility (a lower bound) and the best certificate's bound, or the
+        largest reduced-cost violation.  The visibility is accurate to about ``tolerance``.
     max_enumerated_vertices : int
     columns_per_round : int, optional
         Vertices added per pricing round (default: a quarter of the coordinate count,
         at least 16).
     max_rounds : int
         Cap on pricing rounds per solve; exceeding it raises :class:`SolverError`.
+    smoothing : float
+        Weight of the best functional so far in the pricing point (Wentges smoothing,
+        0 switches it off).
+    seed_columns : int, optional
+        Vertices added before the first master solve, those scoring best on
+        ``p - noise`` (default ``8 n_A n_B``).
 
     Examples
     --------
@@ -292,6 +304,8 @@ class VisibilitySolver:
         max_enumerated_vertices: int = MAX_ENUMERATED_VERTICES,
         columns_per_round: int | None = None,
         max_rounds: int = 10_000,
+        smoothing: float = 0.5,
+        seed_columns: int | None = None,
     ) -> None:
         if not isinstance(scenario, Scenario):
             raise TypeError(f"scenario must be a Scenario, got {type(scenario).__name__}")
@@ -304,6 +318,10 @@ class VisibilitySolver:
         self.v_max = float(v_max)
         self.tolerance = float(tolerance)
         self.max_rounds = int(max_rounds)
+        if not 0.0 <= smoothing < 1.0:
+            raise ValueError(f"smoothing must be in [0, 1), got {smoothing!r}")
+        self.smoothing = float(smoothing)
+        self._seeded = False
         if method == "auto":
             method = (
                 "enumeration"
@@ -315,6 +333,7 @@ class VisibilitySolver:
         self.columns_per_round = (
             max(16, self.rows // 4) if columns_per_round is None else int(columns_per_round)
         )
+        self.seed_columns = 8 * self.rows if seed_columns is None else int(seed_columns)
         self._uniform = noise is None
         self._noise_decomposition: LocalDecomposition | None = None
         seed_a = seed_b = None
@@ -356,6 +375,7 @@ class VisibilitySolver:
         zeros = np.zeros(self.rows)
         h.addRows(self.rows, zeros, zeros, 0, as_index([]), as_index([]), np.empty(0))
         noise_cg = to_cg(self.noise)
+        self._noise_cg = noise_cg
         nz = np.flatnonzero(np.abs(noise_cg) > 0)
         h.addCols(
             1,
@@ -436,8 +456,11 @@ class VisibilitySolver:
         h = self._h
         rhs = to_cg(p)
         h.changeRowsBounds(self.rows, as_index(np.arange(self.rows)), rhs, rhs)
+        if self.method == "column_generation" and not self._seeded:
+            self._seed(p)
         solves = pivots = 0
-        delta = 0.0
+        center: NDArray[np.float64] | None = None  # best normalised functional so far
+        best_bound = math.inf  # visibility upper bound of ``center``
         while True:
             # New data keep the basis dual feasible (dual simplex); new columns keep it
             # primal feasible (primal simplex).
@@ -447,46 +470,97 @@ class VisibilitySolver:
             pivots += int(h.getInfo().simplex_iteration_count)
             y = np.asarray(h.getSolution().row_dual)
             if self.method == "enumeration":
+                center, best_bound = self._normalise(y, 0.0, rhs)
                 break
-            priced = best_vertices(y, self.scenario, self.columns_per_round)
-            delta = float(priced.values[0])
-            if delta <= self.tolerance:
+            lower = 1.0 / (1.0 + float(h.getSolution().col_value[0]))
+            # Price at a point between the best functional so far and the master's duals
+            # (Wentges smoothing); fall back to the master's duals when that finds nothing.
+            added = False
+            for weight in (self.smoothing, 0.0) if center is not None else (0.0,):
+                probe = y if weight == 0.0 else weight * center + (1.0 - weight) * y
+                priced = best_vertices(probe, self.scenario, self.columns_per_round)
+                cand, bound = self._normalise(probe, float(priced.values[0]), rhs)
+                if bound < best_bound:
+                    center, best_bound = cand, bound
+                if best_bound - lower <= self.tolerance * lower:
+                    break
+                gain = self._vertex_scores(y, priced.strategies_a, priced.strategies_b)
+                new = gain > self.tolerance
+                if np.any(new):
+                    self._add_columns(priced.strategies_a[new], priced.strategies_b[new])
+                    added = True
+                    break
+            if not added:
                 break
             if solves >= self.max_rounds:
                 raise SolverError(
                     f"column generation did not converge in {self.max_rounds} rounds "
-                    f"(largest reduced-cost violation {delta:.3g})"
+                    f"(visibility between {lower:.9g} and {best_bound:.9g})"
                 )
-            new = priced.values > self.tolerance
-            self._add_columns(priced.strategies_a[new], priced.strategies_b[new])
-        return self._result(p, y, max(delta, 0.0), solves, pivots, start)
+        assert center is not None
+        return self._result(p, center, best_bound, solves, pivots, start)
+
+    def _seed(self, p: NDArray[np.float64]) -> None:
+        """Add the vertices that score best on ``p - noise`` (a cheap guess of the facet).
+
+        Done once, before the first master solve: it replaces many pricing rounds that
+        would otherwise start from a master far from the optimum.
+        """
+        self._seeded = True
+        guess = functional_to_cg(p - self.noise)
+        priced = best_vertices(guess, self.scenario, self.seed_columns)
+        self._add_columns(priced.strategies_a, priced.strategies_b)
+
+    def _normalise(
+        self, y: NDArray[np.float64], top: float, rhs: NDArray[np.float64]
+    ) -> tuple[NDArray[np.float64], float]:
+        """Shift and scale ``y`` so that ``max_D F = 0`` and ``F(noise) = -1``.
+
+        ``top`` is the exact ``max_D F_y(D)``.  Returns the normalised functional and the
+        visibility upper bound ``(top - F(n)) / (F(p) - F(n))`` it proves (``inf`` when the
+        data do not score above the noise).
+        """
+        y = y.copy()
+        y[0] -= top
+        kappa = -float(y @ self._noise_cg)
+        if not kappa > 0.0:
+            return y, math.inf
+        y /= kappa
+        gap = float(y @ rhs) + 1.0
+        return y, (1.0 / gap if gap > 0.0 else math.inf)
+
+    def _vertex_scores(
+        self, y: NDArray[np.float64], sa: NDArray[np.int64], sb: NDArray[np.int64]
+    ) -> NDArray[np.float64]:
+        """``F_y(D)`` of the given vertices."""
+        sc = self.scenario
+        starts, indices, _ = vertex_columns(sa, sb, sc.outcomes_a, sc.outcomes_b)
+        return np.add.reduceat(y[indices], starts[:-1])
 
     def _result(
         self,
         p: NDArray[np.float64],
         y: NDArray[np.float64],
-        delta: float,
+        bound: float,
         solves: int,
         pivots: int,
         start: float,
     ) -> VisibilityResult:
         h = self._h
         sc = self.scenario
-        sol = h.getSolution()
-        col_value = np.asarray(sol.col_value)
+        col_value = np.asarray(h.getSolution().col_value)
         t = float(col_value[0])
         t_min = 1.0 / self.v_max - 1.0
         capped = t <= t_min + 1e-12
         visibility = 1.0 / (1.0 + t)
-        t_lower = (t - delta) / (1.0 + delta)
-        upper = self.v_max if capped else 1.0 / (1.0 + t_lower)
-        certificate, value = self._certificate(y, p, delta)
+        certificate = None if capped else self._certificate(y)
+        value = float(np.sum(certificate.coefficients * p)) if certificate else math.nan
         local = self._local_model(col_value[1:], t) if t <= 0.0 else None
         return VisibilityResult(
             visibility=visibility,
-            visibility_upper=upper,
-            certificate=None if capped else certificate,
-            certificate_value=value if not capped else math.nan,
+            visibility_upper=self.v_max if capped else max(min(bound, self.v_max), visibility),
+            certificate=certificate,
+            certificate_value=value,
             local_weights=local,
             status=str(h.modelStatusToString(h.getModelStatus())),
             method=self.method,
@@ -500,25 +574,18 @@ class VisibilitySolver:
             scenario=sc,
         )
 
-    def _certificate(
-        self, y: NDArray[np.float64], p: NDArray[np.float64], delta: float
-    ) -> tuple[BellFunctional | None, float]:
+    def _certificate(self, y: NDArray[np.float64]) -> BellFunctional | None:
+        """The certificate ``I = F + 1`` of a normalised functional (module docstring)."""
         sc = self.scenario
-        y = y.copy()
-        y[0] -= delta  # makes F(D) <= 0 on every vertex (exact pricing maximum)
-        beta = functional_from_cg(y, sc)
-        c = -float(np.sum(beta * self.noise))
-        if not c > 1e-12:
-            return None, math.nan
-        coeffs = (beta + c / sc.setting_pairs) / c
+        if not np.all(np.isfinite(y)):
+            return None
+        coeffs = functional_from_cg(y, sc) + 1.0 / sc.setting_pairs
         coeffs[np.abs(coeffs) < 1e-13] = 0.0
-        name = "visibility certificate"
-        cert = BellFunctional(
+        return BellFunctional(
             coeffs,
-            name=name,
+            name="visibility certificate",
             description="I(noise) = 0, local bound 1, I(data) = 1/visibility",
         )
-        return cert, float(np.sum(coeffs * p))
 
     def _local_model(self, q: NDArray[np.float64], t: float) -> LocalDecomposition:
         """``p = sum q D + |t| noise`` with the noise itself decomposed."""
