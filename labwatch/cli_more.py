@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from labwatch import cli_demo
+from labwatch import cli_analyze, cli_demo, cli_record, cli_replay, cli_report
 
 __all__ = ["add_commands", "dispatch"]
 
@@ -15,6 +15,14 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     """Add the demo, record, replay, analyze, report and serve sub-commands."""
     cli_demo.add_demo(sub)
     _COMMANDS["demo"] = cli_demo.run_demo
+    cli_record.add_record(sub)
+    _COMMANDS["record"] = cli_record.run_record
+    cli_replay.add_replay(sub)
+    _COMMANDS["replay"] = cli_replay.run_replay
+    cli_analyze.add_analyze(sub)
+    _COMMANDS["analyze"] = cli_analyze.run_analyze
+    cli_report.add_report(sub)
+    _COMMANDS["report"] = cli_report.run_report
 
 
 def dispatch(args: argparse.Namespace) -> int:

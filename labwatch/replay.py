@@ -32,6 +32,7 @@ import os
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
+from importlib import resources
 
 import zmq
 
@@ -49,12 +50,14 @@ from labwatch.transport import EndpointError, check_endpoint
 
 __all__ = [
     "NEW_RUN_ANNOTATION",
+    "NOT_RECORDED_PREFIX",
     "SPEED_WORDS",
     "ProgressCallback",
     "ReplayInputError",
     "ReplayResult",
     "RepublishResult",
     "check_speed",
+    "demo_recording_path",
     "replay_into",
     "republish",
 ]
@@ -62,6 +65,9 @@ __all__ = [
 #: Annotation text that :class:`labwatch.session.LiveSession` writes when a run is restarted
 #: by hand; a replay calls :meth:`MonitorEngine.new_run` at that point.
 NEW_RUN_ANNOTATION = "new_run"
+#: Start of the annotation a live session writes in place of a message its recorder refused
+#: (e.g. larger than ``max_record_bytes``); such a message cannot be replayed.
+NOT_RECORDED_PREFIX = "message not recorded"
 #: Words accepted for ``speed`` besides positive numbers (``"fast"``: no pacing at all).
 SPEED_WORDS = ("fast",)
 
@@ -102,6 +108,15 @@ def check_speed(speed: float | str) -> float:
     return value
 
 
+def demo_recording_path() -> str:
+    """Path of the demo recording shipped with labwatch (``labwatch/data/demo_run.lwrec``).
+
+    An invented bench: 24 s of a polarization-entangled source with random settings and a
+    few injected faults, made by ``simulators/make_demo_recording.py``.
+    """
+    return str(resources.files("labwatch").joinpath("data", "demo_run.lwrec"))
+
+
 def _check_tick(tick_s: float) -> float:
     if not (isinstance(tick_s, (int, float)) and math.isfinite(tick_s) and tick_s > 0):
         raise ReplayInputError(f"tick_s must be a positive number of seconds, got {tick_s!r}")
@@ -127,6 +142,9 @@ class ReplayResult:
     annotations : int
         Annotation records; ``new_runs`` of them were ``"new_run"`` and restarted the run.
     new_runs : int
+    not_recorded : int
+        Annotations starting with :data:`NOT_RECORDED_PREFIX`: messages the live monitor
+        ingested but could not record, so the replay cannot reproduce them.
     verdict_changes : int
         Messages the replay engine judged differently from the live monitor (accepted vs
         rejected).  0 when the replay engine is configured like the live one; other values
@@ -158,6 +176,7 @@ class ReplayResult:
     rejected_records: int
     annotations: int
     new_runs: int
+    not_recorded: int
     verdict_changes: int
     damaged: tuple[DamagedRegion, ...]
     tail: TailReport | None
@@ -323,7 +342,9 @@ def replay_into(
     pace = check_speed(speed)
     tick = _check_tick(tick_s)
     started = time.perf_counter()
-    counts = {"records": 0, "accepted": 0, "rejected": 0, "annotations": 0, "new_runs": 0}
+    counts = dict.fromkeys(
+        ("records", "accepted", "rejected", "annotations", "new_runs", "not_recorded"), 0
+    )
     changes = 0
     snapshots = 0
     first_mono = last_mono = math.nan
@@ -346,6 +367,8 @@ def replay_into(
                 if rec.annotation == NEW_RUN_ANNOTATION:
                     counts["new_runs"] += 1
                     snapshots += len(engine.new_run())
+                elif rec.annotation and rec.annotation.startswith(NOT_RECORDED_PREFIX):
+                    counts["not_recorded"] += 1
                 continue
             result = engine.ingest(rec.frames, rec.received_wall)
             snapshots += len(result.snapshots)
@@ -367,6 +390,7 @@ def replay_into(
         rejected_records=counts["rejected"],
         annotations=counts["annotations"],
         new_runs=counts["new_runs"],
+        not_recorded=counts["not_recorded"],
         verdict_changes=changes,
         damaged=damaged,
         tail=tail,
