@@ -94,6 +94,7 @@ class MonitorFeed:
         self.error: str | None = None
         self.mode = "idle"
         self.replayed = 0
+        self.replay_result: Any | None = None
         self._recorder: Any | None = None
         self._listeners: list[FeedListener] = []
 
@@ -258,29 +259,38 @@ class MonitorFeed:
         wall = time.time() if received_wall is None else received_wall
         return self.engine.ingest(frames, wall)
 
-    def replay(self, source: str | os.PathLike | Iterable[Any]) -> Snapshot | None:
+    def replay(
+        self, source: str | os.PathLike | Iterable[Any], speed: float | str = "fast"
+    ) -> Snapshot | None:
         """Feed a recording file or an iterable of messages through the engine, then flush.
 
-        ``source`` is a recording path (:mod:`labwatch.recording`; ``"new_run"`` annotations
-        start new run segments as they did live) or an iterable whose items are a message's
-        frames, ``(frames, received_wall)`` pairs, or recording ``Record`` objects.
-        Listeners are called after each message (they throttle themselves) and once at the
-        end with ``force=True``.  Returns the final snapshot.
+        ``source`` is a recording path, replayed by :func:`labwatch.replay.replay_into`
+        (``"new_run"`` annotations start new run segments as they did live; the result is
+        kept in :attr:`replay_result`), or an iterable whose items are a message's frames,
+        ``(frames, received_wall)`` pairs, or recording ``Record`` objects.  ``speed``
+        (recordings only): recorded seconds per wall second, or ``"fast"``.  Listeners are
+        called as messages go in (they throttle themselves) and once at the end with
+        ``force=True``.  Returns the final snapshot.
         """
         if self.running:
             raise RuntimeError("stop the live session before replaying into the same monitor")
         self.mode = "replay"
         try:
             if isinstance(source, (str, os.PathLike)):
-                from labwatch.recording import RecordReader
+                from labwatch.replay import replay_into
 
-                with RecordReader(source) as reader:
-                    for rec in reader:
-                        self._replay_item(rec)
+                def tick(_snap, _health) -> bool:
+                    self.notify(False)
+                    return False
+
+                self.replay_result = replay_into(
+                    self.engine, source, speed=speed, on_tick=tick, tick_s=self.tick_s
+                )
+                self.replayed += self.replay_result.messages
             else:
                 for item in source:
                     self._replay_item(item)
-            self.engine.flush()
+                self.engine.flush()
         finally:
             self.mode = "idle"
         self.notify(True)

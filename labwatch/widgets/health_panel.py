@@ -18,7 +18,8 @@ __all__ = ["HealthPanel", "stream_verdict"]
 def stream_verdict(state: ViewState) -> tuple[str, str]:
     """A one-line state of the stream and its tone (``ok``, ``warn``, ``alarm``, ``idle``).
 
-    A live stream silent for more than ``state.stale_after_s`` gives ``"NO DATA FOR N s"``.
+    A live stream without data messages for more than ``state.stale_after_s`` gives
+    ``"NO DATA FOR N s"`` (heartbeats alone do not count as data).
     """
     h = state.health
     if state.mode == "replay":
@@ -26,13 +27,17 @@ def stream_verdict(state: ViewState) -> tuple[str, str]:
     if state.mode != "live":
         return ("not connected" if h.messages == 0 else "not receiving (figures frozen)"), "idle"
     age = state.message_age_s
+    data_age = state.data_age_s if math.isfinite(state.data_age_s) else age
     if h.messages == 0:
         return "connected, no message yet", "warn"
     if h.source_state in ("stopping", "stopped"):
         return f"source reports {h.source_state} · last message {fmt_age(age)} ago", "warn"
-    if math.isfinite(age) and age > state.stale_after_s:
-        return f"NO DATA FOR {fmt_age(age)}", "alarm"
-    return f"receiving · last message {fmt_age(age)} ago", "ok"
+    if math.isfinite(data_age) and data_age > state.stale_after_s:
+        beat = state.heartbeat_age_s
+        if math.isfinite(beat) and beat <= state.stale_after_s:
+            return f"NO DATA FOR {fmt_age(data_age)} (heartbeats still arriving)", "alarm"
+        return f"NO DATA FOR {fmt_age(data_age)}", "alarm"
+    return f"receiving · last data {fmt_age(data_age)} ago", "ok"
 
 
 class HealthPanel(Panel):
@@ -43,6 +48,9 @@ class HealthPanel(Panel):
     verdict = Unicode("", help="One-line state of the stream").tag(sync=True)
     stale = Bool(False, help="True while a live stream is silent too long").tag(sync=True)
     message_age_s = Float(None, allow_none=True, help="Seconds since the last message").tag(
+        sync=True
+    )
+    data_age_s = Float(None, allow_none=True, help="Seconds since the last data message").tag(
         sync=True
     )
     rejected = Int(0, help="Messages rejected so far").tag(sync=True)
@@ -63,7 +71,10 @@ class HealthPanel(Panel):
         with self.hold_sync():
             self.verdict = text
             self.stale = tone == "alarm"
-            self.message_age_s = age if math.isfinite(age) and state.mode == "live" else None
+            live = state.mode == "live"
+            self.message_age_s = age if math.isfinite(age) and live else None
+            d_age = state.data_age_s
+            self.data_age_s = d_age if math.isfinite(d_age) and live else None
             self.rejected = h.rejected
         with self.status.hold_sync():
             self.status.text = text

@@ -36,6 +36,9 @@ class ViewState:
         Wall clock of this redraw (s, Unix time).
     mode : str
         ``"idle"``, ``"live"`` or ``"replay"``.
+    data_age_s : float
+        Seconds since the last accepted *data* message (heartbeats do not count); ``nan``
+        when unknown.
     stale_after_s : float
         A live stream silent for longer than this is flagged.
     target_text : str
@@ -49,6 +52,7 @@ class ViewState:
     mode: str
     stale_after_s: float = 3.0
     target_text: str = ""
+    data_age_s: float = math.nan
 
     @property
     def message_age_s(self) -> float:
@@ -69,14 +73,17 @@ class ViewState:
 
 def view_state(feed, stale_after_s: float = 3.0, target_text: str = "") -> ViewState:
     """The :class:`ViewState` of a :class:`~labwatch.widgets.feed.MonitorFeed` now."""
+    now = time.time()
+    data_age = feed.engine.data_silence_s(now)
     return ViewState(
         snapshot=feed.latest,
         history=feed.history,
         health=feed.health(),
-        now_wall=time.time(),
+        now_wall=now,
         mode=feed.mode,
         stale_after_s=stale_after_s,
         target_text=target_text,
+        data_age_s=math.nan if data_age is None else data_age,
     )
 
 

@@ -385,6 +385,9 @@ def test_health_panel_lists_rejections_and_flags_silence():
     assert stream_verdict(live_quiet) == ("NO DATA FOR 15 s", "alarm")
     live_ok = replace(live_quiet, now_wall=11.0)
     assert stream_verdict(live_ok)[1] == "ok"
+    # heartbeats keep coming (last at 10.4 s) but the last data message is 8 s old
+    beats_only = replace(live_quiet, now_wall=11.0, data_age_s=8.0)
+    assert stream_verdict(beats_only) == ("NO DATA FOR 8.0 s (heartbeats still arriving)", "alarm")
     assert stream_verdict(replace(live_quiet, mode="idle"))[1] == "idle"
 
 
