@@ -28,8 +28,9 @@ import hashlib
 import os
 import sys
 import tempfile
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -75,9 +76,8 @@ SCENARIO_TEXT = (
 )
 
 
-def _messages() -> list[tuple[float, list[bytes]]]:
+def _messages(d: Mapping[str, Any]) -> list[tuple[float, list[bytes]]]:
     """``(source_time_received, frames)`` in sending order."""
-    d = DEMO
     source = drifting_polarization_source(
         seed=d["seed"],
         initial_misalignment_deg=d["initial_misalignment_deg"],
@@ -127,19 +127,40 @@ def _messages() -> list[tuple[float, list[bytes]]]:
     return out
 
 
-def make_demo_recording(path: str | os.PathLike[str]) -> str:
-    """Write the demo recording to ``path`` (must not exist); returns its SHA-256 (hex)."""
-    d = DEMO
+def make_demo_recording(
+    path: str | os.PathLike[str],
+    judge: MonitorEngine | None = None,
+    **overrides: float,
+) -> str:
+    """Write the demo recording to ``path`` (must not exist); returns its SHA-256 (hex).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        File to create.
+    judge : MonitorEngine, optional
+        The engine that judges each message as the live monitor would (its verdicts and
+        reasons are recorded; afterwards it holds the "live" figures).  Default: an engine
+        without the LP.
+    **overrides
+        Replace entries of :data:`DEMO` (e.g. ``duration_s=60`` for a longer run); the shipped
+        file uses none.
+    """
+    unknown = set(overrides) - set(DEMO)
+    if unknown:
+        raise ValueError(f"unknown demo parameters {sorted(unknown)}; known: {sorted(DEMO)}")
+    d = {**DEMO, **overrides}
     metadata = {
         "command": "simulators/make_demo_recording.py",
         "endpoint": "none (messages generated without a socket)",
         "scenario": SCENARIO_TEXT,
-        "simulation": dict(d),
+        "simulation": d,
     }
     # Judge each message as a live session would, so rejected records carry their reason.
-    judge = MonitorEngine(EngineConfig(analysis=AnalysisConfig(visibility=False)))
+    if judge is None:
+        judge = MonitorEngine(EngineConfig(analysis=AnalysisConfig(visibility=False)))
     with RecordWriter(path, metadata=metadata, flush_interval_s=0.5) as writer:
-        for t_recv, frames in _messages():
+        for t_recv, frames in _messages(d):
             wall = d["start_wall"] + t_recv + d["latency_s"]
             mono = d["start_mono"] + t_recv + d["latency_s"]
             result = judge.ingest(frames, wall)
@@ -149,6 +170,7 @@ def make_demo_recording(path: str | os.PathLike[str]) -> str:
                 else f"{result.reason}: {result.detail}"
             )
             writer.write(frames, received_wall=wall, received_mono=mono, rejected_reason=reason)
+    judge.flush()
     header_size = read_records(path).header.size
     header = encode_header(metadata, d["start_wall"], d["start_mono"])
     if len(header) != header_size:  # same metadata, same length: a mismatch is a bug
