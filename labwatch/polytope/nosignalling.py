@@ -158,6 +158,9 @@ class NoSignallingProjector:
         h = new_model()
         h.setOptionValue("primal_feasibility_tolerance", 1e-10)
         h.setOptionValue("dual_feasibility_tolerance", 1e-10)
+        # The Hessian is positive definite (all N_xy > 0): HiGHS' default regularisation
+        # (1e-7) would only bias the solution.
+        h.setOptionValue("qp_regularization_value", 1e-12)
         h.addCols(
             size,
             np.zeros(size),
