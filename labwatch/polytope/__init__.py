@@ -21,6 +21,14 @@ from labwatch.polytope.nosignalling import (
     no_signalling_test,
     project_no_signalling,
 )
+from labwatch.polytope.subsets import SubsetSearch, SubsetVisibility, subset_visibilities
+from labwatch.polytope.uncertainty import (
+    CountsVisibility,
+    VisibilityInterval,
+    bootstrap_visibilities,
+    visibility_from_counts,
+    visibility_stderr,
+)
 from labwatch.polytope.visibility import (
     DEFAULT_V_MAX,
     MAX_ENUMERATED_VERTICES,
@@ -33,6 +41,7 @@ from labwatch.polytope.visibility import (
 )
 
 __all__ = [
+    "CountsVisibility",
     "DEFAULT_V_MAX",
     "LocalDecomposition",
     "MAX_ENUMERATED_VERTICES",
@@ -42,9 +51,16 @@ __all__ = [
     "NoiseError",
     "SignallingError",
     "SolverError",
+    "SubsetSearch",
+    "SubsetVisibility",
+    "VisibilityInterval",
     "VisibilityResult",
     "VisibilitySolver",
+    "bootstrap_visibilities",
     "no_signalling_test",
     "project_no_signalling",
+    "subset_visibilities",
+    "visibility_from_counts",
+    "visibility_stderr",
     "white_noise_visibility",
 ]

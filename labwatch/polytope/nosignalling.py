@@ -207,7 +207,18 @@ class NoSignallingProjector:
                 "counts have trials per setting pair "
                 f"{totals.ravel().tolist()}, projector was built for {self.trials.ravel().tolist()}"
             )
-        f = n / totals[:, :, None, None]
+        return self.project_frequencies(n / totals[:, :, None, None])
+
+    def project_frequencies(self, frequencies: ArrayLike) -> NoSignallingProjection:
+        """Project a tensor of frequencies with this projector's weights ``N_xy``.
+
+        ``frequencies`` need not be normalised (the constraints normalise the result).
+        """
+        f = np.asarray(frequencies, dtype=np.float64)
+        if f.shape != self.scenario.shape or not np.all(np.isfinite(f)):
+            raise ScenarioError(
+                f"frequencies must be finite with shape {self.scenario.shape}, got {f.shape}"
+            )
         h = self._h
         size = self.scenario.size
         h.changeColsCost(size, as_index(np.arange(size)), -2.0 * self._w * f.ravel())
@@ -218,8 +229,8 @@ class NoSignallingProjector:
         return NoSignallingProjection(
             probabilities=p,
             frequencies=f,
-            trials=totals,
-            weighted_distance=float(np.sum(totals[:, :, None, None] * diff**2)),
+            trials=self.trials,
+            weighted_distance=float(np.sum(self.trials[:, :, None, None] * diff**2)),
             max_adjustment=float(np.max(np.abs(diff))),
             status=status,
         )
