@@ -94,6 +94,7 @@ def run_watch(args: argparse.Namespace) -> int:
     out = summary_dict(final, engine.health(), now=now)
     out["wall_time_s"] = now - started
     out["source_silent"] = bool(out["silence_s"] is None or out["silence_s"] >= silence_after)
+    out["unseen_at_last_status"] = engine.unseen_at_last_status
     out["link"] = dataclasses.asdict(session.link)
     target = out.get("target")
     out["target_met"] = bool(isinstance(target, dict) and target.get("met"))

@@ -112,6 +112,9 @@ class MonitorEngine:
         self.last_data_wall: float | None = None
         self.last_heartbeat_wall: float | None = None
         self.last_status: SourceStatus | None = None
+        #: From the latest status of the followed run: data messages the source says it sent
+        #: after the newest one received (losses that no later message has revealed yet).
+        self.unseen_at_last_status = 0
         self.source: str | None = self.config.source
         self.run: RunAccumulator | None = None
         self.analyzer: Analyzer | None = None
@@ -153,6 +156,9 @@ class MonitorEngine:
             self.source_state = msg.state
             self.last_heartbeat_wall = received_wall
             self.last_status = msg
+            self.unseen_at_last_status = self.tracker.unseen_after_last(
+                msg.source, msg.run, msg.last_seq
+            )
             return IngestResult(True, "status")
         return self._ingest_batch(msg, received_wall)
 

@@ -50,7 +50,9 @@ class SequenceCounters:
 class _RunState:
     run: str
     expected: int
+    start: int = 0  # first sequence number seen of the run
     missing: set[int] = field(default_factory=set)
+    seen_before_start: set[int] = field(default_factory=set)
 
 
 class SequenceTracker:
@@ -88,7 +90,7 @@ class SequenceTracker:
                     old.pop()
                 c.restarts += 1
                 c.missing -= len(state.missing)  # holes of the old run: now written off
-            self._runs[source] = _RunState(run=run, expected=seq + 1)
+            self._runs[source] = _RunState(run=run, expected=seq + 1, start=seq)
             c.missed_at_start += seq
             return "first"
         if seq == state.expected:
@@ -109,8 +111,30 @@ class SequenceTracker:
             c.missing -= 1
             c.late += 1
             return "late"
+        if (
+            seq < state.start
+            and state.start - seq <= self.reorder_window
+            and seq not in state.seen_before_start
+        ):
+            # sent before the first message we saw but delivered after it (reordered at the
+            # start): it was counted as missed at start, not a duplicate
+            state.seen_before_start.add(seq)
+            c.missed_at_start -= 1
+            c.late += 1
+            return "late"
         c.duplicates += 1
         return "duplicate"
+
+    def unseen_after_last(self, source: str, run: str, last_seq: int) -> int:
+        """From a heartbeat: messages up to ``last_seq`` sent after the newest one we saw.
+
+        Gaps already counted are not included: these are losses no later message revealed
+        yet (e.g. dropped trailing messages before a final ``stopped`` status).
+        """
+        state = self._runs.get(source)
+        if state is None or state.run != run:
+            return 0
+        return max(0, last_seq + 1 - state.expected)
 
     def note_last_sent(self, source: str, run: str, last_seq: int) -> int:
         """From a heartbeat: how many messages up to ``last_seq`` we have not seen yet."""
