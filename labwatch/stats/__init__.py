@@ -1,0 +1,63 @@
+"""Statistics for a live Bell monitor: fixed-n figures, stopping-safe tests and estimates.
+
+Pure core (numpy/scipy only).  Every figure carries assumption labels:
+
+- :mod:`~labwatch.stats.intervals` -- Clopper-Pearson intervals and the common-practice
+  sigma figure (``fixed n``, ``Gaussian``, ``i.i.d.``).
+- :mod:`~labwatch.stats.supermartingale` -- test of local realism for random-setting streams,
+  valid under optional stopping and memory (``random settings``, ``stopping-safe``).
+- :mod:`~labwatch.stats.confseq` -- confidence sequences for correlators and Bell values
+  (``i.i.d.``, ``stopping-safe``; cannot test local realism).
+- :mod:`~labwatch.stats.strength` -- statistical strength (KL divergence to the local polytope).
+- :mod:`~labwatch.stats.target` and :mod:`~labwatch.stats.forecast` -- stopping targets and
+  time-to-target forecasts.
+
+See ``docs/statistics.md`` for what each figure means.
+"""
+
+from __future__ import annotations
+
+from labwatch.stats._checks import StatsError
+from labwatch.stats.factors import lambda_max, linear_factor, max_local_expectation, score_tensor
+from labwatch.stats.intervals import (
+    ConfidenceInterval,
+    OutcomeIntervals,
+    SigmaFigure,
+    clopper_pearson,
+    clopper_pearson_array,
+    clopper_pearson_counts,
+    sigma_figure,
+)
+from labwatch.stats.klprojection import LocalProjection, kl_projection
+from labwatch.stats.strength import StatisticalStrength, statistical_strength
+from labwatch.stats.supermartingale import (
+    BETTING_METHODS,
+    LocalRealismEnsemble,
+    LocalRealismResult,
+    LocalRealismTest,
+    default_bet_grid,
+)
+
+__all__ = [
+    "BETTING_METHODS",
+    "ConfidenceInterval",
+    "LocalProjection",
+    "LocalRealismEnsemble",
+    "LocalRealismResult",
+    "LocalRealismTest",
+    "OutcomeIntervals",
+    "SigmaFigure",
+    "StatisticalStrength",
+    "StatsError",
+    "clopper_pearson",
+    "clopper_pearson_array",
+    "clopper_pearson_counts",
+    "default_bet_grid",
+    "kl_projection",
+    "lambda_max",
+    "linear_factor",
+    "max_local_expectation",
+    "score_tensor",
+    "sigma_figure",
+    "statistical_strength",
+]
