@@ -259,10 +259,11 @@ def project_no_signalling(counts: ArrayLike) -> NoSignallingProjection:
     Examples
     --------
     >>> import numpy as np
-    >>> counts = np.array([[[[40, 10], [12, 38]]]])
+    >>> counts = np.array([[[[40, 10], [12, 38]], [[35, 25], [20, 20]]]])  # 1 x 2 settings
     >>> proj = project_no_signalling(counts)
-    >>> proj.probabilities.sum()
-    1.0
+    >>> proj.probabilities.sum(axis=3).round(4)  # Alice's marginal no longer depends on y
+    array([[[0.55, 0.45],
+            [0.55, 0.45]]])
     """
     arr = np.asarray(counts)
     scenario = Scenario.from_shape(arr.shape)
