@@ -1,10 +1,12 @@
 """``labwatch analyze FILE``: replay a recording as fast as possible and print the final figures.
 
 The figures are those ``labwatch watch`` showed live (same engine, same options), so
-``analyze --json`` prints the object ``watch --json`` printed, without the fields that depend
-on the live wall clock (``wall_time_s``, ``silence_s``) or on the live process (the
-recording error, the stop command), plus ``"recording"``: what the file held, its SHA-256
-and its tail report.
+``analyze --json`` prints the object ``watch --json`` printed, bit for bit, without the fields
+that depend on the live wall clock (``wall_time_s``, ``silence_s``, ``source_silent``) or on
+the live process (``link``, ``stop_command``, the recorder's ``recorded``, ``not_recorded``
+and ``recording_error``), plus ``"recording"``: what the file held, its SHA-256 and its tail
+report.  The object depends on the file and the options only: analysing a file twice prints
+the same bytes.
 """
 
 from __future__ import annotations
