@@ -181,7 +181,7 @@ class SourceStatus:
 
 
 def _reject(reason: str, detail: str) -> MessageRejected:
-    return MessageRejected(reason, detail)
+    return MessageRejected(reason, detail[:300])  # details quote hostile input: keep them short
 
 
 def _no_constants(name: str) -> Any:
@@ -221,9 +221,13 @@ def _ident(header: dict[str, Any], name: str) -> str:
 
 def _time(header: dict[str, Any], name: str) -> float:
     value = _field(header, name, (int, float))
-    if not math.isfinite(value):
+    try:
+        out = float(value)
+    except OverflowError:  # an integer beyond the float range
+        raise _reject("time_window", f"{name} is out of range") from None
+    if not math.isfinite(out):
         raise _reject("time_window", f"{name} is not finite")
-    return float(value)
+    return out
 
 
 def _int_pair(value: Any, name: str) -> tuple[int, int]:
@@ -295,9 +299,22 @@ def _setting_probabilities(
     value = header.get("setting_probabilities")
     if value is None:
         return None
+    m_a, m_b = scenario.settings_a, scenario.settings_b
+    if (
+        not isinstance(value, list)
+        or len(value) != m_a
+        or not all(isinstance(row, list) and len(row) == m_b for row in value)
+        or not all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) for row in value for v in row
+        )
+    ):
+        raise _reject(
+            "header_field",
+            f"setting_probabilities must be a {m_a} x {m_b} list of lists of numbers",
+        )
     try:
         q = np.array(value, dtype=np.float64)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):
         raise _reject("header_field", "setting_probabilities must be a numeric matrix") from None
     if q.shape != (scenario.settings_a, scenario.settings_b):
         raise _reject(
@@ -381,7 +398,7 @@ def parse_message(
     if schema != SCHEMA:
         raise _reject("schema", f"schema {str(schema)[:60]!r} is not {SCHEMA!r}")
     version = header.get("version")
-    if version != VERSION or isinstance(version, bool):
+    if type(version) is not int or version != VERSION:
         raise _reject(
             "version", f"version {str(version)[:20]!r} not supported (this is v{VERSION})"
         )
@@ -399,8 +416,8 @@ def parse_message(
         if state not in SOURCE_STATES:
             raise _reject("header_field", f"state {state!r} not in {SOURCE_STATES}")
         last_seq = _field(header, "last_seq", int)
-        if last_seq < -1:
-            raise _reject("header_field", f"last_seq {last_seq} < -1")
+        if not -1 <= last_seq <= (1 << 62):
+            raise _reject("header_field", f"last_seq {last_seq} out of range -1..2**62"[:120])
         text = header.get("message", "")
         if not isinstance(text, str):
             raise _reject("header_field", "message must be a string")
@@ -410,7 +427,7 @@ def parse_message(
 
     seq = _field(header, "seq", int)
     if seq < 0 or seq > (1 << 62):
-        raise _reject("header_field", f"seq {seq} out of range")
+        raise _reject("header_field", f"seq {seq} out of range 0..2**62"[:120])
     t_start, t_stop = _time(header, "t_start"), _time(header, "t_stop")
     if t_stop < t_start:
         raise _reject("time_window", f"t_stop {t_stop} before t_start {t_start}")
