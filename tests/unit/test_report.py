@@ -150,3 +150,43 @@ def test_report_of_an_empty_stream_still_renders():
     page = render_html(data)
     assert "Final figures" in page and SAFETY_NOTE in page
     assert data["series"] == [] and data["final"]["coincidences"] == 0
+
+
+def test_interval_figures_evidence_and_target_are_drawn_and_tabulated():
+    from dataclasses import replace
+
+    from labwatch.snapshot import Figure
+
+    engine = MonitorEngine(EngineConfig(analysis=AnalysisConfig(visibility=False)))
+    snaps = []
+    engine.subscribe(snaps.append)
+    result = replay_into(engine, DEMO)
+    collector = ReportCollector()
+    for k, s in enumerate(snaps):
+        # figures as the analysis layer reports them (values made up for the view test)
+        vis = Figure(
+            "visibility",
+            0.9 - 0.005 * k,
+            0.01,
+            0.88 - 0.005 * k,
+            0.92 - 0.005 * k,
+            0.95,
+            ("i.i.d.", "fair sampling"),
+        )
+        p = Figure("p_value", 10.0 ** (-k), assumptions=("random settings", "stopping-safe"))
+        target = {"description": "p<=1e-6", "met": k >= 6, "trials": s.trials}
+        collector(replace(s, figures=(vis, p), extras={"target": target}))
+    last = replace(snaps[-1], figures=(vis, p), extras={"target": target})
+    data = report_data(collector, last, result.health, {"file": DEMO})
+    page = render_html(data)
+    assert page.count("<svg") == 5  # Bell value, visibility, evidence, rates, timeline
+    rows = {r["name"]: r for r in data["final_figures"]}
+    assert rows["visibility"]["low"] == pytest.approx(vis.low) and rows["target"]["value"] == "met"
+    assert f"[{vis.low:.5g}, {vis.high:.5g}] at 95%" in page
+    assert "stopping-safe" in page and "fair sampling" in page
+    met = [e for e in data["timeline"]["events"] if e["kind"] == "target met"]
+    assert len(met) == 1 and met[0]["detail"] == "p<=1e-6"
+    assert data["timeline"]["target_met_at"] == pytest.approx(met[0]["t"])
+    (series,) = data["series"]
+    assert series["neg_log10_p"][-1] == pytest.approx(len(snaps) - 1)
+    assert series["visibility_low"][0] == pytest.approx(0.88)
