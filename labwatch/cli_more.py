@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from labwatch import cli_analyze, cli_demo, cli_record, cli_replay, cli_report
+from labwatch import cli_analyze, cli_demo, cli_keys, cli_record, cli_replay, cli_report
 
 __all__ = ["add_commands", "dispatch"]
 
@@ -23,6 +23,8 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     _COMMANDS["analyze"] = cli_analyze.run_analyze
     cli_report.add_report(sub)
     _COMMANDS["report"] = cli_report.run_report
+    cli_keys.add_keys(sub)
+    _COMMANDS["keys"] = cli_keys.run_keys
 
 
 def dispatch(args: argparse.Namespace) -> int:

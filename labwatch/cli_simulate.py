@@ -45,6 +45,16 @@ def run_simulate(args: argparse.Namespace) -> int:
     config = publisher_config_from_args(args)
     source = source_from_args(args)
     pub = Publisher(source, config, log=lambda s: print(s, file=sys.stderr, flush=True))
+    if config.server_keys is not None:
+        from pathlib import Path
+
+        allowed = sorted(Path(config.server_keys.allowed_keys_dir).glob("*.key"))
+        print(
+            f"simulate: CurveZMQ on, {len(allowed)} authorised monitor key(s) in "
+            f"{config.server_keys.allowed_keys_dir}",
+            file=sys.stderr,
+            flush=True,
+        )
     sent = pub.run()
     how = "stopped by command" if pub.stopped_by_command else "done"
     print(f"simulate: {how}, {sent} data messages sent", file=sys.stderr)

@@ -149,12 +149,13 @@ class _LinkWatch:
             )
             self._reconnect_at = None
         elif ev == zmq.EVENT_DISCONNECTED:
+            refused = not st.connected and st.last_problem in _HANDSHAKE_FAILED.values()
             self.state = LinkState(
                 False,
                 st.disconnects + 1,
                 st.reconnects,
                 st.handshake_failures,
-                "connection to the source dropped",
+                st.last_problem if refused else "connection to the source dropped",
             )
             self._reconnect_at = time.monotonic() + _RECONNECT_GRACE_S
         elif ev in (zmq.EVENT_CONNECT_RETRIED, zmq.EVENT_CONNECT_DELAYED):
