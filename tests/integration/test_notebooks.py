@@ -11,7 +11,7 @@ from jupyter_client.kernelspec import KernelSpecManager
 from nbclient import NotebookClient
 
 NOTEBOOKS = Path(__file__).resolve().parents[2] / "notebooks"
-NAMES = ["live_alignment.ipynb"]
+NAMES = ["live_alignment.ipynb", "qudit_frames.ipynb"]
 
 
 def test_python3_kernel_spec_is_found():
