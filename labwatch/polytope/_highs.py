@@ -7,6 +7,9 @@ declared acceptable.
 
 from __future__ import annotations
 
+import os
+import sys
+
 import highspy
 import numpy as np
 from numpy.typing import NDArray
@@ -21,9 +24,36 @@ class SolverError(RuntimeError):
     """HiGHS failed, or finished with a model status the caller cannot use."""
 
 
+_banner_shown = False
+
+
+def _construct() -> highspy.Highs:
+    # HiGHS prints a copyright banner from C on the first construction in a process, before
+    # any option can be set; it would corrupt machine-readable stdout (``watch --json``).
+    global _banner_shown
+    if _banner_shown:
+        return highspy.Highs()
+    _banner_shown = True
+    try:
+        fd = sys.stdout.fileno()
+    except (AttributeError, OSError, ValueError):
+        return highspy.Highs()  # no real stdout (e.g. a notebook kernel): nothing to protect
+    sys.stdout.flush()
+    saved = os.dup(fd)
+    try:
+        with open(os.devnull, "w") as null:
+            os.dup2(null.fileno(), fd)
+            try:
+                return highspy.Highs()
+            finally:
+                os.dup2(saved, fd)
+    finally:
+        os.close(saved)
+
+
 def new_model() -> highspy.Highs:
     """A HiGHS instance with logging silenced and deterministic single-thread settings."""
-    h = highspy.Highs()
+    h = _construct()
     h.setOptionValue("output_flag", False)
     h.setOptionValue("log_to_console", False)
     return h

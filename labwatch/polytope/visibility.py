@@ -89,8 +89,12 @@ __all__ = [
 
 #: Default cap on the visibility (data within ``1e-6`` of the noise are reported at the cap).
 DEFAULT_V_MAX = 1e6
-#: Up to this many vertices the LP holds all of them; beyond, column generation.
-MAX_ENUMERATED_VERTICES = 20_000
+#: Up to this many vertices ``method="auto"`` holds all of them in the LP; beyond, column
+#: generation (measured on this project's 2-core machine: column generation already wins on
+#: refresh time at 4096 vertices, see benchmarks/bench_polytope.py).
+MAX_ENUMERATED_VERTICES = 2_000
+#: ``method="enumeration"`` refuses scenarios with more vertices than this (memory).
+ENUMERATION_HARD_CAP = 2_000_000
 #: Allowed ``method`` options.
 METHODS = ("auto", "enumeration", "column_generation")
 #: Allowed ``signalling`` options: refuse signalling data, or average the marginals.
@@ -207,7 +211,7 @@ class VisibilityResult:
     scenario: Scenario = field(repr=False, default=None)  # type: ignore[assignment]
 
     @property
-    def nonlocal_(self) -> bool:
+    def is_nonlocal(self) -> bool:
         """``visibility < 1``: the data lie outside the local polytope."""
         return self.visibility < 1.0
 
@@ -327,6 +331,11 @@ class VisibilitySolver:
                 "enumeration"
                 if scenario.local_vertices <= max_enumerated_vertices
                 else "column_generation"
+            )
+        if method == "enumeration" and scenario.local_vertices > ENUMERATION_HARD_CAP:
+            raise ValueError(
+                f"method='enumeration' would hold {scenario.local_vertices} vertex columns "
+                f"(cap {ENUMERATION_HARD_CAP}); use method='column_generation' or 'auto'"
             )
         self.method = method
         self.rows = cg_dimension(scenario)
@@ -470,7 +479,9 @@ class VisibilitySolver:
             pivots += int(h.getInfo().simplex_iteration_count)
             y = np.asarray(h.getSolution().row_dual)
             if self.method == "enumeration":
-                center, best_bound = self._normalise(y, 0.0, rhs)
+                # Exact maximum (cheap here) so the certificate's local bound is exactly 1.
+                top = float(best_vertices(y, self.scenario, 1).values[0])
+                center, best_bound = self._normalise(y, top, rhs)
                 break
             lower = 1.0 / (1.0 + float(h.getSolution().col_value[0]))
             # Price at a point between the best functional so far and the master's duals
