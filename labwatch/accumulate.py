@@ -149,6 +149,7 @@ class RunAccumulator:
         self.singles = (0, 0)
         self.has_singles = False
         self.coincidence_window_s: float | None = None
+        self.no_click = False
         self.t_first: float | None = None
         self.t_last: float | None = None
         self.random_settings = False
@@ -188,6 +189,7 @@ class RunAccumulator:
         self.live_time_s += live
         if batch.coincidence_window_s is not None:
             self.coincidence_window_s = batch.coincidence_window_s
+        self.no_click = self.no_click or batch.no_click
         if batch.random_settings:
             self.random_settings = True
             if batch.setting_probabilities is not None:

@@ -15,8 +15,15 @@ from numpy.typing import NDArray
 
 from labwatch.accumulate import RunAccumulator
 from labwatch.bell import BellFunctional, BellValue, cglmp, chsh
+from labwatch.polytope import (
+    SolverError,
+    VisibilitySolver,
+    subset_visibilities,
+    visibility_from_counts,
+)
 from labwatch.scenario import Scenario
 from labwatch.snapshot import Figure, RateFigures
+from labwatch.stats import LocalRealismTest
 
 __all__ = [
     "FUNCTIONAL_CHOICES",
@@ -99,6 +106,10 @@ class AnalysisConfig:
         Seed of the bootstrap resampling (so replays reproduce the live figures).
     target : str or None
         Confidence target (see :mod:`labwatch.stats.target`), e.g. ``"p<=1e-6"``.
+    betting : str
+        Betting method of the stopping-safe test (:data:`labwatch.stats.BETTING_METHODS`).
+    max_subsets : int
+        The best-pair search is skipped when it would need more 2x2 sub-problems than this.
     """
 
     functional: str | BellFunctional = "auto"
@@ -109,6 +120,8 @@ class AnalysisConfig:
     lp_vertex_cap: int = 10**9
     seed: int = 0
     target: str | None = None
+    betting: str = "grid"
+    max_subsets: int = 400
 
     def __post_init__(self) -> None:
         if isinstance(self.functional, str) and self.functional not in FUNCTIONAL_CHOICES:
@@ -132,13 +145,30 @@ class EpochFigures:
     extras: dict[str, Any]
 
 
+BLOCK_SETTINGS_NOTE = (
+    "settings held in blocks: these data cannot test local realism (a local model can fake "
+    "any block-wise violation); figures assume i.i.d. trials"
+)
+
+
 class Analyzer:
-    """Per-run analysis state; one instance per run (a new run gets a fresh analyzer)."""
+    """Per-run analysis state; one instance per run (a new run gets a fresh analyzer).
+
+    Holds the warm LP model, the running stopping-safe test and the certificate found at the
+    previous epoch.  A functional chosen from the data ("certificate") is always the one found
+    at an *earlier* epoch, so the test of local realism only bets on past data.
+    """
 
     def __init__(self, scenario: Scenario, config: AnalysisConfig | None = None) -> None:
         self.scenario = scenario
         self.config = config or AnalysisConfig()
-        self._functional = self._resolve_functional()
+        self._fixed = self._resolve_functional()
+        self._functional = self._fixed
+        self._certificate: BellFunctional | None = None
+        self._solver: VisibilitySolver | None = None
+        self._lrt: LocalRealismTest | None = None
+        self._lrt_functional: BellFunctional | None = None
+        self.epochs = 0
 
     def _resolve_functional(self) -> BellFunctional | None:
         f = self.config.functional
@@ -151,11 +181,11 @@ class Analyzer:
             return cglmp(d_a) if (m_a, m_b) == (2, 2) and d_a == d_b else None
         if f == "auto":
             return default_functional(self.scenario)
-        return None  # "certificate": taken from the LP when it runs
+        return None  # "certificate": taken from the LP of an earlier epoch
 
     @property
     def functional(self) -> BellFunctional | None:
-        """The functional currently used for the Bell value (may change to the certificate)."""
+        """The functional currently used for the Bell value (may be the LP certificate)."""
         return self._functional
 
     def rates(self, acc: RunAccumulator) -> RateFigures:
@@ -175,12 +205,171 @@ class Analyzer:
         her_b = trials / s_a if s_a > 0 else None
         return RateFigures(rate, rate_err, ra, rb, acc_hz, her_a, her_b)
 
+    # ------------------------------------------------------------------ parts
+    @staticmethod
+    def _labels(acc: RunAccumulator, base: tuple[str, ...]) -> tuple[str, ...]:
+        return base if acc.no_click else base + ("fair sampling",)
+
+    def _visibility(
+        self, acc: RunAccumulator, figures: list[Figure], extras: dict[str, Any]
+    ) -> None:
+        cfg = self.config
+        if not cfg.visibility:
+            return
+        if acc.scenario.local_vertices > cfg.lp_vertex_cap:
+            extras["visibility_note"] = (
+                f"LP skipped: {acc.scenario.local_vertices} local vertices exceed the cap"
+            )
+            return
+        totals = acc.counts.sum(axis=(2, 3))
+        if np.any(totals == 0):
+            extras["visibility_note"] = "waiting for trials at every setting pair"
+            return
+        if self._solver is None:
+            self._solver = VisibilitySolver(acc.scenario)
+        rng = np.random.default_rng([cfg.seed, self.epochs])
+        try:
+            cv = visibility_from_counts(
+                acc.counts,
+                bootstrap=cfg.bootstrap,
+                rng=rng,
+                solver=self._solver,
+                confidence_level=cfg.confidence_level,
+            )
+        except (SolverError, ValueError) as exc:
+            extras["visibility_note"] = f"LP failed: {exc}"[:300]
+            self._solver = None  # rebuild from scratch next epoch
+            return
+        low = high = math.nan
+        if cv.interval is not None:
+            low, high = cv.interval.low, cv.interval.high
+        figures.append(
+            Figure(
+                "visibility",
+                cv.visibility,
+                cv.stderr,
+                low,
+                high,
+                cfg.confidence_level if cv.interval is not None else math.nan,
+                self._labels(acc, tuple(cv.assumptions)),
+                "white-noise visibility from the local-polytope LP; v < 1 means nonlocal",
+            )
+        )
+        sig = cv.signalling
+        figures.append(
+            Figure(
+                "no_signalling_p",
+                sig.pvalue,
+                assumptions=("i.i.d.",),
+                note=f"G-test of the marginals: G = {sig.statistic:.2f}, {sig.dof} dof; "
+                "small values flag setting-dependent efficiencies or drifts",
+            )
+        )
+        res = cv.result
+        extras["visibility"] = {
+            "method": res.method,
+            "solve_time_s": res.solve_time,
+            "capped": res.capped,
+            "visibility_upper": res.visibility_upper,
+            "vertices": res.vertices,
+            "bootstrap": cfg.bootstrap,
+        }
+        cert = res.certificate
+        if cert is not None:
+            extras["certificate"] = {
+                "name": cert.name,
+                "local_bound": cert.local_bound,
+                "value": res.certificate_value,
+                "coefficients": cert.coefficients.tolist(),
+                "note": "white noise scores 0, local bound 1, the data score 1/visibility",
+            }
+        if cfg.best_pair and max(acc.scenario.settings_a, acc.scenario.settings_b) > 2:
+            m_a, m_b = acc.scenario.settings_a, acc.scenario.settings_b
+            n_sub = math.comb(m_a, min(2, m_a)) * math.comb(m_b, min(2, m_b))
+            if n_sub <= cfg.max_subsets:
+                search = subset_visibilities(
+                    cv.projection.probabilities, min(2, m_a), min(2, m_b), include_full=False
+                )
+                extras["best_pair"] = {
+                    "settings_a": list(search.best.settings_a),
+                    "settings_b": list(search.best.settings_b),
+                    "visibility": search.best.visibility,
+                    "subsets": len(search.subsets),
+                    "full_visibility": cv.visibility,
+                }
+        self._certificate = cert
+
+    def _evidence(
+        self,
+        acc: RunAccumulator,
+        epoch_counts: NDArray[np.int64],
+        functional: BellFunctional | None,
+        figures: list[Figure],
+        extras: dict[str, Any],
+    ) -> None:
+        if acc.block_settings or not acc.random_settings:
+            extras["local_realism"] = BLOCK_SETTINGS_NOTE
+            return
+        if functional is None or not epoch_counts.any():
+            return  # nothing to bet on yet: this batch is simply not tested (predictable)
+        q = acc.setting_probabilities
+        declared = q is not None
+        if q is None:
+            q = np.full(
+                (acc.scenario.settings_a, acc.scenario.settings_b), 1.0 / acc.scenario.setting_pairs
+            )
+        if self._lrt is None:
+            self._lrt = LocalRealismTest(
+                functional, q, method=self.config.betting, no_click_discarded=not acc.no_click
+            )
+            self._lrt_functional = functional
+        elif functional is not self._lrt_functional:
+            self._lrt.update_functional(functional)
+            self._lrt_functional = functional
+        res = self._lrt.update(epoch_counts)
+        labels = tuple(res.assumptions)
+        if not declared:
+            labels += ("setting probabilities assumed uniform",)
+        figures.append(
+            Figure(
+                "p_value",
+                res.p_value,
+                assumptions=labels,
+                note="stopping-safe p-value against local realism (test supermartingale, Ville)",
+            )
+        )
+        extras["evidence"] = {
+            "log10_evidence": res.log10_evidence,
+            "log_m": res.log_m,
+            "trials": res.trials,
+            "batches": res.batches,
+            "method": res.method,
+            "functional": res.functional,
+            "growth_per_trial": res.growth_per_trial,
+            "realised_growth_per_trial": res.realised_growth_per_trial,
+        }
+
     def analyze(self, acc: RunAccumulator, epoch_counts: NDArray[np.int64]) -> EpochFigures:
         """Figures for the run so far; ``epoch_counts`` are the counts added since last epoch."""
-        f = self._functional
+        figures: list[Figure] = []
+        extras: dict[str, Any] = {}
+        # a data-chosen functional comes from an earlier epoch's LP (see class docstring)
+        f = self._fixed if self._fixed is not None else self._certificate
+        self._functional = f
+        self._evidence(acc, epoch_counts, f, figures, extras)
+        self._visibility(acc, figures, extras)
         bell = f.evaluate_counts(acc.counts) if f is not None else None
         bell_w = f.evaluate_counts(acc.window.total) if f is not None else None
+        if f is not None:
+            extras["functional"] = {
+                "name": f.name,
+                "local_bound": f.local_bound,
+                "quantum_bound": f.quantum_bound,
+                "no_signalling_bound": f.no_signalling_bound,
+                "chosen_from_data": f is not self._fixed,
+            }
         corr = correlators(acc.counts)
+        self.epochs += 1
         return EpochFigures(
             functional=f.name if f is not None else "",
             bell=bell,
@@ -189,6 +378,6 @@ class Analyzer:
             correlator_errors=None if corr is None else corr[1],
             contrast=correlation_contrast(acc.counts),
             rates=self.rates(acc),
-            figures=(),
-            extras={},
+            figures=tuple(figures),
+            extras=extras,
         )

@@ -139,6 +139,9 @@ class CountBatch:
         Declared q(x, y) for random-setting (events) streams.
     events : ndarray (n, 4) uint8/uint16 or None
         The raw per-trial columns (x, y, a, b) in arrival order, for ``events`` messages.
+    no_click : bool
+        The last outcome of each party is the no-click event (the data need no fair-sampling
+        assumption).
     """
 
     kind: str
@@ -154,6 +157,7 @@ class CountBatch:
     coincidence_window_s: float | None = None
     setting_probabilities: NDArray[np.float64] | None = None
     events: NDArray[np.integer] | None = field(default=None, repr=False)
+    no_click: bool = False
 
     @property
     def random_settings(self) -> bool:
@@ -434,6 +438,9 @@ def parse_message(
     scenario = _scenario(header, limits)
     layout = _field(header, "layout", str)
     dtype = _field(header, "dtype", str)
+    no_click = header.get("no_click", False)
+    if not isinstance(no_click, bool):
+        raise _reject("header_field", "no_click must be true or false")
     window = header.get("coincidence_window_s")
     if window is not None and (
         isinstance(window, bool) or not isinstance(window, (int, float)) or not 0 < window < 1
@@ -501,6 +508,7 @@ def parse_message(
         coincidence_window_s=None if window is None else float(window),
         setting_probabilities=q,
         events=events,
+        no_click=no_click,
     )
 
 
@@ -542,6 +550,7 @@ def encode_histogram(
     pair: tuple[int, int] | None = None,
     singles: tuple[Sequence[int], Sequence[int]] | None = None,
     coincidence_window_s: float | None = None,
+    no_click: bool = False,
     dtype: str = "<u4",
 ) -> list[bytes]:
     """Frames of a histogram-increment message.
@@ -556,6 +565,8 @@ def encode_histogram(
     fields["dtype"] = dtype
     if singles is not None:
         fields["singles"] = [[int(v) for v in singles[0]], [int(v) for v in singles[1]]]
+    if no_click:
+        fields["no_click"] = True
     if coincidence_window_s is not None:
         fields["coincidence_window_s"] = float(coincidence_window_s)
     payload = np.ascontiguousarray(counts, dtype=np.dtype(dtype)).tobytes()
@@ -574,6 +585,7 @@ def encode_events(
     setting_probabilities: NDArray[np.float64] | None = None,
     singles: tuple[Sequence[int], Sequence[int]] | None = None,
     coincidence_window_s: float | None = None,
+    no_click: bool = False,
 ) -> list[bytes]:
     """Frames of a per-trial events message; ``events`` has shape ``(n, 4)``: x, y, a, b."""
     ev = np.asarray(events)
@@ -584,6 +596,8 @@ def encode_events(
         fields["setting_probabilities"] = np.asarray(setting_probabilities, dtype=float).tolist()
     if singles is not None:
         fields["singles"] = [[int(v) for v in singles[0]], [int(v) for v in singles[1]]]
+    if no_click:
+        fields["no_click"] = True
     if coincidence_window_s is not None:
         fields["coincidence_window_s"] = float(coincidence_window_s)
     payload = np.ascontiguousarray(ev, dtype=np.dtype(dtype)).tobytes()

@@ -151,8 +151,8 @@ def status_line(
     for f in snapshot.figures:
         if f.name == "visibility":
             head.append(f"v* {_num(f.value)} ± {_num(f.stderr)}")
-        elif f.name == "evidence":
-            head.append(f"p ≤ {_num(f.value, '.2e')} (stopping-safe)")
+        elif f.name == "p_value":
+            head.append(f"p ≤ {_num(f.value, '.2e')} vs local realism (stopping-safe)")
     target = snapshot.extras.get("target")
     if isinstance(target, dict) and target.get("met"):
         head.append("TARGET MET")

@@ -137,6 +137,7 @@ def generate_message(
         scenario=sc,
         singles=singles,
         coincidence_window_s=cfg.coincidence_window_s,
+        no_click=bool(getattr(source, "keep_no_click", False)),
     )
     if cfg.settings == "blocks":
         a, b = source.sample(
