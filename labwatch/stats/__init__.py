@@ -18,6 +18,13 @@ See ``docs/statistics.md`` for what each figure means.
 from __future__ import annotations
 
 from labwatch.stats._checks import StatsError
+from labwatch.stats.confseq import (
+    CONFSEQ_METHODS,
+    BellSequenceResult,
+    BellValueSequence,
+    BoundedMeanSequence,
+    MeanSequenceSnapshot,
+)
 from labwatch.stats.factors import lambda_max, linear_factor, max_local_expectation, score_tensor
 from labwatch.stats.intervals import (
     ConfidenceInterval,
@@ -40,6 +47,11 @@ from labwatch.stats.supermartingale import (
 
 __all__ = [
     "BETTING_METHODS",
+    "CONFSEQ_METHODS",
+    "BellSequenceResult",
+    "BellValueSequence",
+    "BoundedMeanSequence",
+    "MeanSequenceSnapshot",
     "ConfidenceInterval",
     "LocalProjection",
     "LocalRealismEnsemble",
