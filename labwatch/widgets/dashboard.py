@@ -279,12 +279,13 @@ class Dashboard(w.VBox):
             raise TraitError(f"functional {key!r} not in {tuple(self._functionals)}")
         return key
 
-    @validate("window_s", "stale_after_s")
-    def _validate_positive(self, proposal):
-        v = proposal["value"]
-        if not (math.isfinite(v) and v > 0):
-            raise TraitError(f"{proposal['trait'].name} must be a positive number, got {v!r}")
-        return v
+    @validate("window_s")
+    def _validate_window_s(self, proposal):
+        return _positive("window_s", proposal["value"])
+
+    @validate("stale_after_s")
+    def _validate_stale_after_s(self, proposal):
+        return _positive("stale_after_s", proposal["value"])
 
     # ------------------------------------------------------------------ observers
     def _bind(self, name: str, widget: w.Widget) -> None:
@@ -494,6 +495,12 @@ class Dashboard(w.VBox):
             return "not recording"
         n = self.feed.session.recorded if self.feed.session is not None else 0
         return f"recording to {self._writer.path} · {fmt_count(n)} messages written"
+
+
+def _positive(name: str, v: float) -> float:
+    if not (math.isfinite(v) and v > 0):
+        raise TraitError(f"{name} must be a positive number of seconds, got {v!r}")
+    return v
 
 
 def _result(fut) -> dict:

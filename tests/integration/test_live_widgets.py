@@ -132,6 +132,8 @@ def test_auto_stop_sends_stop_once_when_the_target_is_met(endpoint):
         # what the analysis reports once its target rule fires
         dash.feed.add_snapshot(replace(snap, extras={**snap.extras, "target": met}))
         dash.feed.add_snapshot(replace(snap, extras={**snap.extras, "target": met}))
+        dash.redraw()  # (later snapshots of the engine do not carry the injected target)
+        assert dash.target_met and "TARGET MET" in dash.banner.value
         await _until(lambda: bool(dash.last_stop_reply), 10)
         await _until(lambda: not th.is_alive(), 10)
         dash.stop()
@@ -140,6 +142,5 @@ def test_auto_stop_sends_stop_once_when_the_target_is_met(endpoint):
     asyncio.run(main())
     assert pub.stopped_by_command and dash.last_stop_reply["ok"]
     assert len(dash._auto_stopped) == 1  # sent once per run, not once per snapshot
-    dash.redraw()
-    assert dash.target_met and "TARGET MET" in dash.banner.value
+    assert "source asked to stop" in dash.banner.stop_note
     assert math.isfinite(dash.feed.latest.bell.value)

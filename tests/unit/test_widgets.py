@@ -12,16 +12,16 @@ from traitlets import TraitError
 
 from labwatch.analysis import AnalysisConfig
 from labwatch.bell import ch_eberhard
-from labwatch.history import History
+from labwatch.history import History, neg_log10_p
 from labwatch.protocol import encode_events, encode_histogram, encode_status
 from labwatch.scenario import Scenario
 from labwatch.snapshot import Figure
 from labwatch.widgets import Dashboard, LiveMonitor, MonitorFeed
-from labwatch.widgets._format import DASH, fmt, fmt_age, fmt_p, fmt_pm, fmt_rate
+from labwatch.widgets._format import DASH, fmt, fmt_age, fmt_assumptions, fmt_p, fmt_pm, fmt_rate
 from labwatch.widgets.evidence_panel import target_p_threshold
 from labwatch.widgets.health_panel import stream_verdict
 from labwatch.widgets.readout import Readout
-from labwatch.widgets.state import ViewState
+from labwatch.widgets.state import ViewState, functional_info
 from labwatch.widgets.throttle import Throttle
 
 SC = Scenario(2, 2, 2, 2)
@@ -134,7 +134,10 @@ def test_live_monitor_trace_follows_engine_snapshots():
     local = mon.plot.marks["local"]
     assert local.visible and list(local.y) == [2.0, 2.0]
     assert list(local.x) == [snaps_t[0], snaps_t[-1]]
-    assert not mon.plot.marks["quantum"].visible  # quantum bound not in the snapshot: hidden
+    # the quantum line is drawn exactly when the snapshot reports a quantum bound
+    quantum = functional_info(mon.feed.latest)[2]
+    assert mon.quantum_bound == quantum
+    assert mon.plot.marks["quantum"].visible is (quantum is not None)
     assert "2.800" in mon.readout.value and "fixed n" in mon.readout.value
     assert "Settings held in blocks" in mon.footer.value  # histogram stream = block settings
     assert "interlock" in mon.footer.value
@@ -231,9 +234,15 @@ def test_dashboard_panels_from_a_random_setting_stream():
     np.testing.assert_allclose(a.bars.y, snap.contrast.ravel())
     assert a.coincidence_hz == pytest.approx(snap.rates.coincidence_hz)
     assert "correlators" in a.correlator_table.value
-    # figures the analysis has not produced are shown as "—"
+    # the LP is off in this configuration: its figure is absent and shown as "—"
+    assert snap.figure("visibility") is None
     assert d.visibility_panel.visibility is None and DASH in d.visibility_panel.readout.value
-    assert d.evidence_panel.neg_log10_p is None
+    p = snap.figure("p_value")
+    if p is None:
+        assert d.evidence_panel.neg_log10_p is None and DASH in d.evidence_panel.readout.value
+    else:
+        assert d.evidence_panel.neg_log10_p == pytest.approx(neg_log10_p(p.value))
+        assert fmt_assumptions(p.assumptions) in d.evidence_panel.readout.value
     assert not d.banner.met and d.banner.layout.display == "none"
 
 
@@ -310,7 +319,7 @@ def test_panels_show_the_analysis_figures_with_their_assumptions(met):
     assert "1.0e-07" in m.p_readout.value
     e = d.evidence_panel
     assert e.neg_log10_p == pytest.approx(7.0) and e.target_level == pytest.approx(6.0)
-    assert np.allclose(e.plot.marks["evidence"].y, 7.0)
+    assert np.allclose(e.plot.marks["evidence"].y[-3:], 7.0)  # the three injected epochs
     assert np.allclose(e.plot.marks["target"].y, 6.0)
     assert "0.0123 nats per trial" in e.note.value
     ns = d.alignment_panel.no_signalling
