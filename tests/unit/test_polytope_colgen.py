@@ -140,3 +140,28 @@ def test_five_mubs_d4_column_generation():
     # A different pricing path (no smoothing, fewer seeds) reaches the same optimum.
     other = white_noise_visibility(p, smoothing=0.0, seed_columns=64)
     assert other.visibility == pytest.approx(res.visibility, abs=1e-7)
+
+
+def test_column_generation_with_custom_noise_and_local_model():
+    rng = np.random.default_rng(12)
+    sc = Scenario(3, 3, 3, 3)
+    p = random_quantum(3, 3, 3, rng)
+    # Colored noise: the product of the data's marginals (a local interior point).
+    noise = np.einsum("xa,yb->xyab", p.sum(axis=3).mean(axis=1), p.sum(axis=2).mean(axis=0))
+    enum = VisibilitySolver(sc, noise, method="enumeration").solve(p)
+    colgen = VisibilitySolver(sc, noise, method="column_generation").solve(p)
+    assert colgen.visibility == pytest.approx(enum.visibility, abs=1e-7)
+    assert np.sum(colgen.certificate.coefficients * noise) == pytest.approx(0.0, abs=1e-9)
+    local = random_local(sc, rng)
+    res = VisibilitySolver(sc, noise, method="column_generation").solve(local)
+    assert res.visibility >= 1 - 1e-9
+    # The local model rebuilds the point (LP tolerance 1e-9 over a few dozen terms).
+    np.testing.assert_allclose(res.local_weights.tensor(3, 3), local, atol=1e-8)
+
+
+def test_results_are_frozen():
+    res = white_noise_visibility(Scenario(2, 2, 2, 2).uniform())
+    with pytest.raises(AttributeError):
+        res.visibility = 0.5
+    with pytest.raises(ValueError):
+        res.local_weights.weights[0] = 1.0  # read-only array
