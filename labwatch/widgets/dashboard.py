@@ -327,6 +327,16 @@ class Dashboard(w.VBox):
             self._busy = False
         self.controls.say(why, "alarm")
 
+    @observe("control_endpoint")
+    def _control_endpoint_changed(self, change) -> None:
+        if change["new"]:
+            try:
+                check_endpoint(change["new"])
+            except ValueError as exc:
+                self._set_back("control_endpoint", change["old"], str(exc))
+                return
+        self.controls.stop_source.disabled = not self.control_endpoint
+
     @observe("connected")
     def _connected_changed(self, change) -> None:
         if self._busy:
@@ -493,8 +503,9 @@ class Dashboard(w.VBox):
     def _recording_text(self) -> str:
         if self._writer is None:
             return "not recording"
-        n = self.feed.session.recorded if self.feed.session is not None else 0
-        return f"recording to {self._writer.path} · {fmt_count(n)} messages written"
+        stats = getattr(self._writer, "stats", None)
+        n = getattr(stats, "records_written", None)
+        return f"recording to {self._writer.path} · {fmt_count(n)} records written"
 
 
 def _positive(name: str, v: float) -> float:

@@ -247,7 +247,23 @@ class MonitorFeed:
         )
         self.check_analysis(new.analysis)
         self.engine.config = new
+        self._note(
+            f"settings changed: window_s={new.window_s:g}, "
+            f"functional={getattr(new.analysis.functional, 'name', new.analysis.functional)}, "
+            f"target={new.analysis.target}"
+        )
         self.new_run()
+
+    def _note(self, text: str) -> None:
+        """Annotate the recording (if any) for whoever reads it later; failures are ignored
+        here (the session reports recording failures on the next write)."""
+        rec = self.recorder
+        if rec is None:
+            return
+        try:
+            rec.annotate(text, received_wall=time.time(), received_mono=time.monotonic())
+        except OSError:
+            pass
 
     # ------------------------------------------------------------------ direct ingest / replay
     def health(self) -> StreamHealth:

@@ -8,7 +8,7 @@ from collections.abc import Iterable
 from typing import Any
 
 import ipywidgets as w
-from traitlets import Bool, Enum, Float, Int, TraitError, Unicode, validate
+from traitlets import Bool, Enum, Float, Int, TraitError, Unicode, observe, validate
 
 from labwatch.analysis import AnalysisConfig
 from labwatch.engine import EngineConfig, IngestResult
@@ -123,6 +123,12 @@ class LiveMonitor(w.VBox):
         if hasattr(self, "_throttle"):
             self._throttle.set_rate(hz)
         return hz
+
+    @observe("trace")
+    def _trace_changed(self, change) -> None:
+        if hasattr(self, "_drawn_version"):
+            self._drawn_version = -1  # the other series: redraw the marks
+            self.redraw()
 
     # ------------------------------------------------------------------ control
     def start(self) -> None:

@@ -422,3 +422,47 @@ def test_controls_show_the_initial_settings():
     c = d.controls
     assert (c.window.value, c.functional.value, c.target.value) == (7.5, "chsh", "p<=1e-4")
     assert c.connect.value is False and c.record.value is False
+
+
+def test_trace_switch_redraws_the_other_series():
+    mon = LiveMonitor(window_s=1.0, analysis=NO_LP, trace="run")
+    for frames in block_frames(60, same=80, diff=20):
+        mon.ingest(frames, received_wall=0.0)
+    mon.flush()
+    np.testing.assert_allclose(mon.plot.marks["value"].y, mon.feed.history.series("bell"))
+    mon.trace = "window"
+    np.testing.assert_allclose(mon.plot.marks["value"].y, mon.feed.history.series("bell_window"))
+    assert mon.value == mon.feed.latest.bell_window.value
+
+
+def test_control_endpoint_can_be_given_later_and_is_checked():
+    d = _dash()
+    assert d.controls.stop_source.disabled
+    d.control_endpoint = "tcp://127.0.0.1:5781"
+    assert not d.controls.stop_source.disabled
+    d.control_endpoint = "not an endpoint"
+    assert d.control_endpoint == "tcp://127.0.0.1:5781"
+    assert "bad endpoint" in d.controls.message.value
+
+
+class _Notes:
+    """Test double of a recorder: keeps annotations."""
+
+    def __init__(self) -> None:
+        self.notes: list[str] = []
+
+    def annotate(self, text, *, received_wall, received_mono):
+        self.notes.append(text)
+
+    def write(self, frames, *, received_wall, received_mono, rejected_reason=None):
+        pass
+
+
+def test_settings_change_is_noted_in_the_recording():
+    d = _dash()
+    notes = _Notes()
+    d.feed.set_recorder(notes)
+    d.window_s = 4.0
+    assert notes.notes and "window_s=4" in notes.notes[-1]
+    d.functional_choice = "chsh"
+    assert "functional=chsh" in notes.notes[-1]
