@@ -53,8 +53,11 @@ def source_from_args(args: argparse.Namespace) -> PairSource:
             dark_rate_hz=args.dark_rate,
             keep_no_click=args.no_click,
         )
-    from simulators import local
+    from labwatch.bell import chsh
+    from simulators.local import AdaptiveLocalSource, LocalMixtureSource
 
+    # Local sources trade CHSH: trials per second = --rate (no detector model).
     if kind == "local":
-        return local.source_at_bound_from_args(args)
-    return local.adaptive_source_from_args(args)
+        return LocalMixtureSource.at_bound(chsh(), rate=args.rate)
+    q = [[0.25, 0.25], [0.25, 0.25]]
+    return AdaptiveLocalSource(chsh(), q, rate=args.rate, chunk=max(1, int(args.rate // 1000)))

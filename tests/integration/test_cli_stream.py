@@ -68,3 +68,39 @@ def test_bad_endpoint_fails_clearly(run_cli, bad):
     out, err = w.communicate(timeout=30)
     assert w.returncode != 0
     assert "endpoint" in err and bad in err
+
+
+def test_qudit_stream_with_random_frames_is_accepted(run_cli):
+    ep = f"tcp://127.0.0.1:{free_port()}"
+    sim = run_cli("simulate", ep, "--source", "qudit", "--dim", "3", "--bases", "3", "--frames", "random", "--settings", "random", "--rate", "20000", "--duration", "8", "--seed", "5")
+    res = watch_json(run_cli, ep, "--duration", "4")
+    sim.kill()
+    assert res["scenario"] == {"settings": [3, 3], "outcomes": [3, 3]}
+    assert res["rejected"] == 0 and res["gaps"] == 0 and res["coincidences"] > 10000
+    assert res["settings_mode"] == "random"
+    vis = res["figures"]["visibility"]
+    assert vis["value"] > 0 and vis["stderr"] > 0
+    assert "no_signalling_p" in res["figures"]
+    best = res["best_pair"]  # more than two settings per party: the best 2x2 choice is reported
+    assert len(best["settings_a"]) == 2 and len(best["settings_b"]) == 2 and best["subsets"] == 9
+    assert best["visibility"] >= best["full_visibility"] - 1e-6  # a subset cannot beat all settings
+
+
+def test_local_source_stays_at_the_bound(run_cli):
+    ep = f"tcp://127.0.0.1:{free_port()}"
+    sim = run_cli("simulate", ep, "--source", "local", "--rate", "5000", "--settings", "random", "--duration", "8", "--seed", "2")
+    res = watch_json(run_cli, ep, "--duration", "4")
+    sim.kill()
+    value, err = res["chsh"]["value"], res["chsh"]["stderr"]
+    assert abs(value - 2.0) < 4 * err  # a mixture of deterministic strategies at the bound: E[S] = 2
+    assert res["figures"]["p_value"]["value"] > 0.01  # no evidence against local realism
+    assert "stopping-safe" in res["figures"]["p_value"]["assumptions"]
+
+
+def test_block_settings_say_they_cannot_test_local_realism(run_cli):
+    ep = f"tcp://127.0.0.1:{free_port()}"
+    sim = run_cli("simulate", ep, "--settings", "blocks", "--duration", "8")
+    res = watch_json(run_cli, ep, "--duration", "3")
+    sim.kill()
+    assert "cannot test local realism" in res["local_realism"]
+    assert "p_value" not in res["figures"]
