@@ -25,6 +25,7 @@ import time
 from labwatch.analysis import AnalysisConfig
 from labwatch.engine import EngineConfig, MonitorEngine
 from labwatch.recording import read_records
+from labwatch.recording_summary import replay_comparable
 from labwatch.replay import replay_into
 from labwatch.summary import summary_dict
 from simulators.make_demo_recording import make_demo_recording
@@ -87,9 +88,9 @@ def main() -> None:
         for lp in (False, True):
             results = []
             elapsed = best(lambda lp=lp, out=results: out.append(replay_into(_engine(lp), path)))
-            same = summary_dict(results[-1].final, results[-1].health) == summary_dict(
-                live[lp].latest, live[lp].health()
-            )
+            same = replay_comparable(
+                summary_dict(results[-1].final, results[-1].health)
+            ) == replay_comparable(summary_dict(live[lp].latest, live[lp].health()))
             label = f"replay_into, LP {'on' if lp else 'off'}"
             rows.append((f"{label} ({'same figures' if same else 'FIGURES DIFFER'})", elapsed))
         base = rows[0][1]

@@ -5,8 +5,8 @@ The figures are those ``labwatch watch`` showed live (same engine, same options)
 that depend on the live wall clock (``wall_time_s``, ``silence_s``, ``source_silent``) or on
 the live process (``link``, ``stop_command``, the recorder's ``recorded``, ``not_recorded``
 and ``recording_error``), plus ``"recording"``: what the file held, its SHA-256 and its tail
-report.  The object depends on the file and the options only: analysing a file twice prints
-the same bytes.
+report.  Apart from timings of the analysis itself (``visibility.solve_time_s``, the LP's
+wall time), the object depends on the file and the options only.
 """
 
 from __future__ import annotations

@@ -87,6 +87,8 @@ def _run_publish(args: argparse.Namespace, pace: float) -> int:
         from labwatch.security import ServerKeys
 
         server_keys = ServerKeys(args.server_key, args.allowed_keys)
+    elif getattr(args, "allowed_keys", None):
+        raise ValueError("--allowed-keys needs --server-key (this source's .key_secret file)")
 
     def tick(sent: int, records: int) -> None:
         if not args.quiet:

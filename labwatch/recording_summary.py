@@ -9,15 +9,55 @@ from __future__ import annotations
 
 import hashlib
 import os
+from collections.abc import Mapping
 from typing import Any
 
 from labwatch.recording import DamagedRegion, TailReport
 from labwatch.replay import ReplayResult
 from labwatch.snapshot import to_jsonable
 
-__all__ = ["file_sha256", "recording_dict", "tail_dict"]
+__all__ = [
+    "LIVE_ONLY_FIELDS",
+    "TIMING_FIELDS",
+    "file_sha256",
+    "recording_dict",
+    "replay_comparable",
+    "tail_dict",
+]
+
+#: Top-level fields of ``watch --json`` that a recording cannot reproduce: the live wall
+#: clock at the end of watch (``wall_time_s``, ``silence_s``, ``source_silent``), the ZeroMQ
+#: connection (``link``), the source's reply to a stop command (``stop_command``) and the
+#: live recorder's own counters (``recorded``, ``not_recorded``, ``recording_error``).
+LIVE_ONLY_FIELDS = (
+    "wall_time_s",
+    "silence_s",
+    "source_silent",
+    "link",
+    "stop_command",
+    "recorded",
+    "not_recorded",
+    "recording_error",
+)
+#: Nested fields ``(key, subkey)`` that time the analysis itself (wall seconds of the LP
+#: solve), measured anew by every run.
+TIMING_FIELDS = (("visibility", "solve_time_s"),)
 
 _HASH_CHUNK = 1 << 20
+
+
+def replay_comparable(summary: Mapping[str, Any]) -> dict[str, Any]:
+    """The part of a ``watch --json`` / ``analyze --json`` object that a replay reproduces.
+
+    Drops :data:`LIVE_ONLY_FIELDS`, :data:`TIMING_FIELDS` and ``"recording"`` (what analyze
+    adds); everything left is equal, bit for bit, between a live run and its replay with the
+    same options.
+    """
+    out = {k: v for k, v in summary.items() if k not in LIVE_ONLY_FIELDS and k != "recording"}
+    for head, leaf in TIMING_FIELDS:
+        if isinstance(out.get(head), Mapping):
+            out[head] = {k: v for k, v in out[head].items() if k != leaf}
+    return out
 
 
 def file_sha256(path: str | os.PathLike[str]) -> str:

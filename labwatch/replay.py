@@ -448,7 +448,7 @@ def republish(
         ``on_tick(sent, records_read)`` about every ``tick_s`` wall seconds; True stops.
     tick_s : float
     server_keys : object, optional
-        CurveZMQ server keys (``apply_server(socket)``, e.g.
+        CurveZMQ server keys (``apply_server(socket)`` and ``stop(context)``, e.g.
         :class:`labwatch.security.ServerKeys`).
     max_record_bytes : int
 
@@ -515,6 +515,8 @@ def republish(
         pub.setsockopt(zmq.LINGER, int(drain_s * 1000))
     finally:
         pub.close()
+        if server_keys is not None and hasattr(server_keys, "stop"):
+            server_keys.stop(ctx)  # its authenticator socket would keep term() waiting
         ctx.term()
     return RepublishResult(
         path=os.fspath(path),
