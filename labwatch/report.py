@@ -200,6 +200,14 @@ def _pick(d: Mapping[str, Any] | None, *keys: str) -> Any:
     return d
 
 
+def _functional_name(final: Mapping[str, Any]) -> str:
+    """Name of the Bell functional: the summary holds a name or a ``{"name": ...}`` dict."""
+    f = final.get("functional")
+    if isinstance(f, Mapping):
+        f = f.get("name")
+    return str(f) if f else "Bell value"
+
+
 def _final_rows(final: dict[str, Any]) -> list[dict[str, Any]]:
     """Rows of the final-figures table from the summary dict."""
     rows: list[dict[str, Any]] = []
@@ -220,7 +228,7 @@ def _final_rows(final: dict[str, Any]) -> list[dict[str, Any]]:
         }
         rows.append(row)
 
-    functional = final.get("functional") or "Bell value"
+    functional = _functional_name(final)
     for key, label in (("bell", "run"), ("bell_window", "rolling window")):
         b = final.get(key)
         if isinstance(b, Mapping):
@@ -501,7 +509,7 @@ def _plots(data: Mapping[str, Any]) -> list[tuple[str, str, str]]:
                 fontsize=8,
                 color="#444444",
             )
-        functional = final.get("functional") or "Bell value"
+        functional = _functional_name(final)
         ax.set_xlabel(xlabel)
         ax.set_ylabel(functional)
         ax.legend(fontsize=7, loc="lower right")
@@ -903,7 +911,7 @@ def render_html(data: Mapping[str, Any]) -> str:
     if bell.get("value") is not None:
         value, err = _pm(bell["value"], bell.get("stderr"))
         summary.append(
-            f"<p><b>{_e(final.get('functional', 'Bell value'))} = {_e(value)} ± {_e(err)}</b> "
+            f"<p><b>{_e(_functional_name(final))} = {_e(value)} ± {_e(err)}</b> "
             f"after {_e(final.get('coincidences'))} coincidences "
             f"({_e(_assumptions(bell.get('assumptions')))}).</p>"
         )

@@ -113,6 +113,7 @@ def test_html_is_well_formed_self_contained_and_shows_figures_and_digest(demo_re
     # the final CHSH value at the precision of its error (2 significant digits of the error)
     assert f"{result.final.bell.value:.3f}" in page and "fixed n" in page
     assert "random per trial" in page
+    assert "CHSH over the run" in page and "{'" not in page  # names, never a dict's repr
 
 
 def test_timeline_shows_the_injected_faults(demo_report):
