@@ -62,6 +62,7 @@ import math
 import time
 from dataclasses import dataclass, field
 
+import highspy
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
@@ -290,6 +291,9 @@ class VisibilitySolver:
     seed_columns : int, optional
         Vertices added before the first master solve, those scoring best on
         ``p - noise`` (default ``8 n_A n_B``).
+    max_columns : int, optional
+        When a re-solve starts with more generated columns than this (default
+        ``20 n_A n_B``), the non-basic ones are dropped, oldest first, down to half.
 
     Examples
     --------
@@ -314,6 +318,7 @@ class VisibilitySolver:
         max_rounds: int = 10_000,
         smoothing: float = 0.5,
         seed_columns: int | None = None,
+        max_columns: int | None = None,
     ) -> None:
         if not isinstance(scenario, Scenario):
             raise TypeError(f"scenario must be a Scenario, got {type(scenario).__name__}")
@@ -347,6 +352,7 @@ class VisibilitySolver:
             max(16, self.rows // 4) if columns_per_round is None else int(columns_per_round)
         )
         self.seed_columns = 8 * self.rows if seed_columns is None else int(seed_columns)
+        self.max_columns = 20 * self.rows if max_columns is None else int(max_columns)
         self._uniform = noise is None
         self._noise_decomposition: LocalDecomposition | None = None
         seed_a = seed_b = None
@@ -418,6 +424,7 @@ class VisibilitySolver:
                 cols_a = np.concatenate([cols_a, seed_a])
                 cols_b = np.concatenate([cols_b, seed_b])
             self._add_columns(cols_a, cols_b)
+        self._kept = self.columns  # starting columns are never pruned (feasibility)
 
     def _add_columns(self, sa: NDArray[np.int64], sb: NDArray[np.int64]) -> None:
         sc = self.scenario
@@ -469,8 +476,11 @@ class VisibilitySolver:
         h = self._h
         rhs = to_cg(p)
         h.changeRowsBounds(self.rows, as_index(np.arange(self.rows)), rhs, rhs)
-        if self.method == "column_generation" and not self._seeded:
-            self._seed(p)
+        if self.method == "column_generation":
+            if not self._seeded:
+                self._seed(p)
+            elif self.columns > self.max_columns:
+                self._prune()
         solves = pivots = 0
         center: NDArray[np.float64] | None = None  # best normalised functional so far
         best_bound = math.inf  # visibility upper bound of ``center``
@@ -514,6 +524,25 @@ class VisibilitySolver:
                 )
         assert center is not None
         return self._result(p, center, best_bound, solves, pivots, start)
+
+    def _prune(self) -> None:
+        """Drop non-basic generated columns, oldest first, down to half of ``max_columns``.
+
+        Keeps a long-running live solver from growing without bound; the basis stays valid
+        because only non-basic columns go.
+        """
+        status = self._h.getBasis().col_status
+        basic = np.array([s == highspy.HighsBasisStatus.kBasic for s in status[1:]])
+        candidates = np.flatnonzero(~basic[self._kept :]) + self._kept
+        excess = self.columns - self.max_columns // 2
+        drop = candidates[: max(0, excess)]
+        if drop.size == 0:
+            return
+        self._h.deleteCols(drop.size, as_index(drop + 1))  # +1: column 0 is t
+        keep = np.ones(self.columns, dtype=bool)
+        keep[drop] = False
+        self._strat_a = self._strat_a[keep]
+        self._strat_b = self._strat_b[keep]
 
     def _seed(self, p: NDArray[np.float64]) -> None:
         """Add the vertices that score best on ``p - noise`` (a cheap guess of the facet).

@@ -165,3 +165,18 @@ def test_results_are_frozen():
         res.visibility = 0.5
     with pytest.raises(ValueError):
         res.local_weights.weights[0] = 1.0  # read-only array
+
+
+def test_pruning_keeps_answers_and_bounds_the_master():
+    rng = np.random.default_rng(21)
+    sc = Scenario(4, 4, 3, 3)
+    base = random_quantum(4, 4, 3, rng)
+    small = VisibilitySolver(sc, method="column_generation", max_columns=400, seed_columns=50)
+    for _ in range(8):
+        p = 0.9 * base + 0.1 * random_local(sc, rng)
+        res = small.solve(p)
+        ref = VisibilitySolver(sc, method="column_generation").solve(p)
+        assert res.visibility == pytest.approx(ref.visibility, abs=1e-7)
+        base = random_quantum(4, 4, 3, rng)  # large moves: every solve adds columns
+    # Pruning runs at the start of a solve; one solve adds at most a few rounds of columns.
+    assert small.columns < 400 + 40 * small.columns_per_round
