@@ -79,7 +79,7 @@ def test_constraints_are_independent_and_complete():
     sc = Scenario(3, 2, 3, 4)
     a_mat, _ = no_signalling_constraints(sc)
     # Affine dimension of the no-signalling set: (1 + m_A(d_A-1))(1 + m_B(d_B-1)) - 1
-    # (Collins & Gisin, J. Phys. A 37, 1775 (2004)).
+    # (Collins & Gisin, J. Phys. A 37, 1775 (2004); citation from memory).
     ns_dim = (1 + 3 * 2) * (1 + 2 * 3) - 1
     assert np.linalg.matrix_rank(a_mat) == a_mat.shape[0] == sc.size - ns_dim
 

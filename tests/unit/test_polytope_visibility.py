@@ -225,11 +225,14 @@ def test_bad_options_are_quoted():
         white_noise_visibility(p, signalling="ignore")
 
 
-def test_mub_data_deterministic_on_matching_bases_are_not_nonlocal():
-    # Perfectly correlated outcomes in every shared MUB pair give v = 1 exactly here:
-    # with the same bases on both sides, the data are on the local polytope's boundary
-    # (common practice, no source; checked against the independent scipy formulation).
-    d = 3
-    mub = np.asarray(mutually_unbiased_bases(d))[:2]
-    p = probabilities(maximally_entangled(d), mub, mub.conj())
-    assert white_noise_visibility(p).visibility == pytest.approx(baseline_visibility(p), abs=1e-7)
+def test_same_mubs_on_both_sides_sit_on_the_local_boundary():
+    # Worked argument (no source): with the same MUBs on both sides (Bob's conjugated) the
+    # outcomes of equal settings are perfectly correlated and those of different settings
+    # uniform, which the local model "one fresh uniform outcome per setting, shared" gives
+    # exactly; perfect correlations put it on the boundary, so v* = 1.
+    for m, d in [(2, 3), (3, 3), (3, 2)]:
+        mub = np.asarray(mutually_unbiased_bases(d))[:m]
+        p = probabilities(maximally_entangled(d), mub, mub.conj())
+        v = white_noise_visibility(p).visibility
+        assert v == pytest.approx(1.0, abs=1e-9)
+        assert v == pytest.approx(baseline_visibility(p), abs=1e-7)
