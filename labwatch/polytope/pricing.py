@@ -20,10 +20,14 @@ from labwatch.polytope.coordinates import party_dimension, party_vectors
 from labwatch.scenario import Scenario
 from labwatch.strategies import MAX_ENUMERATED_STRATEGIES, party_strategies
 
-__all__ = ["PricedVertices", "best_vertices"]
+__all__ = ["PricedVertices", "SIDES", "best_vertices", "best_vertices_both_sides"]
 
 #: Enumerated strategies per vectorised chunk.
 _CHUNK = 1 << 14
+#: Which party :func:`best_vertices` enumerates.
+SIDES = ("auto", "a", "b")
+#: :func:`best_vertices_both_sides` also enumerates the larger party up to this many strategies.
+BOTH_SIDES_LIMIT = 1 << 17
 
 
 @dataclass(frozen=True)
@@ -56,7 +60,9 @@ def _responses(g: NDArray[np.float64], settings: int, outcomes: int) -> tuple[ND
     return values, best
 
 
-def best_vertices(y: NDArray[np.float64], scenario: Scenario, k: int = 1) -> PricedVertices:
+def best_vertices(
+    y: NDArray[np.float64], scenario: Scenario, k: int = 1, side: str = "auto"
+) -> PricedVertices:
     """The ``k`` enumerated strategies with the highest ``F``, each with its best response.
 
     Parameters
@@ -65,7 +71,9 @@ def best_vertices(y: NDArray[np.float64], scenario: Scenario, k: int = 1) -> Pri
         Functional on the coordinates, flattened row-major.
     scenario : Scenario
     k : int
-        How many vertices to return (fewer when the smaller party has fewer strategies).
+        How many vertices to return (fewer when the enumerated party has fewer strategies).
+    side : {"auto", "a", "b"}
+        The party to enumerate; ``"auto"`` takes the one with fewer strategies.
 
     Returns
     -------
@@ -76,7 +84,9 @@ def best_vertices(y: NDArray[np.float64], scenario: Scenario, k: int = 1) -> Pri
     mat = np.asarray(y, dtype=np.float64).reshape(
         party_dimension(m_a, d_a), party_dimension(m_b, d_b)
     )
-    swapped = d_b**m_b < d_a**m_a
+    if side not in SIDES:
+        raise ValueError(f"side={side!r} is not one of {SIDES}")
+    swapped = d_b**m_b < d_a**m_a if side == "auto" else side == "b"
     if swapped:
         mat = mat.T
         m_a, m_b, d_a, d_b = m_b, m_a, d_b, d_a
@@ -107,3 +117,27 @@ def best_vertices(y: NDArray[np.float64], scenario: Scenario, k: int = 1) -> Pri
     if swapped:
         keep_a, keep_b = keep_b, keep_a
     return PricedVertices(values=keep_v, strategies_a=keep_a, strategies_b=keep_b)
+
+
+def best_vertices_both_sides(
+    y: NDArray[np.float64], scenario: Scenario, k: int = 1
+) -> PricedVertices:
+    """About ``k / 2`` best vertices enumerating each party (best response for the other).
+
+    Merged without duplicates, best first.
+
+    Two lists give more varied columns than one (each enumerated strategy brings only its
+    best response).  Falls back to the smaller party alone when the larger one has more than
+    ``BOTH_SIDES_LIMIT`` strategies.  The first entry is still the exact maximum.
+    """
+    m_a, m_b, d_a, d_b = scenario.shape
+    if max(d_a**m_a, d_b**m_b) > BOTH_SIDES_LIMIT or k < 2:
+        return best_vertices(y, scenario, k)
+    one = best_vertices(y, scenario, k - k // 2, side="a")
+    two = best_vertices(y, scenario, k // 2, side="b")
+    values = np.concatenate([one.values, two.values])
+    sa = np.concatenate([one.strategies_a, two.strategies_a])
+    sb = np.concatenate([one.strategies_b, two.strategies_b])
+    _, first = np.unique(np.concatenate([sa, sb], axis=1), axis=0, return_index=True)
+    order = first[np.argsort(-values[first], kind="stable")]  # the lists may overlap
+    return PricedVertices(values=values[order], strategies_a=sa[order], strategies_b=sb[order])

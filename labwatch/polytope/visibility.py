@@ -75,7 +75,7 @@ from labwatch.polytope.coordinates import (
     to_cg,
     vertex_columns,
 )
-from labwatch.polytope.pricing import best_vertices
+from labwatch.polytope.pricing import best_vertices, best_vertices_both_sides
 from labwatch.scenario import Scenario, ScenarioError
 from labwatch.strategies import party_strategies, vertex_tensor
 
@@ -503,7 +503,7 @@ class VisibilitySolver:
             added = False
             for weight in (self.smoothing, 0.0) if center is not None else (0.0,):
                 probe = y if weight == 0.0 else weight * center + (1.0 - weight) * y
-                priced = best_vertices(probe, self.scenario, self.columns_per_round)
+                priced = best_vertices_both_sides(probe, self.scenario, self.columns_per_round)
                 cand, bound = self._normalise(probe, float(priced.values[0]), rhs)
                 if bound < best_bound:
                     center, best_bound = cand, bound
@@ -552,7 +552,7 @@ class VisibilitySolver:
         """
         self._seeded = True
         guess = functional_to_cg(p - self.noise)
-        priced = best_vertices(guess, self.scenario, self.seed_columns)
+        priced = best_vertices_both_sides(guess, self.scenario, self.seed_columns)
         self._add_columns(priced.strategies_a, priced.strategies_b)
 
     def _normalise(

@@ -20,7 +20,7 @@ from labwatch.polytope.coordinates import (
     to_cg,
     vertex_columns,
 )
-from labwatch.polytope.pricing import best_vertices
+from labwatch.polytope.pricing import best_vertices, best_vertices_both_sides
 from labwatch.scenario import Scenario
 from labwatch.strategies import maximize_over_strategies, party_strategies, vertex_tensor
 
@@ -180,3 +180,18 @@ def test_pruning_keeps_answers_and_bounds_the_master():
         base = random_quantum(4, 4, 3, rng)  # large moves: every solve adds columns
     # Pruning runs at the start of a solve; one solve adds at most a few rounds of columns.
     assert small.columns < 400 + 40 * small.columns_per_round
+
+
+def test_both_sides_pricing_is_exact_and_duplicate_free():
+    rng = np.random.default_rng(6)
+    sc = Scenario(3, 3, 3, 3)
+    for _ in range(5):
+        y = rng.normal(size=cg_dimension(sc))
+        both = best_vertices_both_sides(y, sc, 40)
+        exact = maximize_over_strategies(functional_from_cg(y, sc)).value
+        assert both.values[0] == pytest.approx(exact, abs=1e-12)
+        keys = {tuple(a) + tuple(b) for a, b in zip(both.strategies_a, both.strategies_b)}
+        assert len(keys) == len(both.values)
+        assert np.all(np.diff(both.values) <= 0)
+    with pytest.raises(ValueError, match="'c'"):
+        best_vertices(y, sc, 3, side="c")
