@@ -281,8 +281,7 @@ class VisibilitySolver:
         largest reduced-cost violation.  The visibility is accurate to about ``tolerance``.
     max_enumerated_vertices : int
     columns_per_round : int, optional
-        Vertices added per pricing round (default: a quarter of the coordinate count,
-        at least 16).
+        Vertices added per pricing round (default: half the coordinate count, at least 16).
     max_rounds : int
         Cap on pricing rounds per solve; exceeding it raises :class:`SolverError`.
     smoothing : float
@@ -349,7 +348,7 @@ class VisibilitySolver:
         self.method = method
         self.rows = cg_dimension(scenario)
         self.columns_per_round = (
-            max(16, self.rows // 4) if columns_per_round is None else int(columns_per_round)
+            max(16, self.rows // 2) if columns_per_round is None else int(columns_per_round)
         )
         self.seed_columns = 8 * self.rows if seed_columns is None else int(seed_columns)
         self.max_columns = 20 * self.rows if max_columns is None else int(max_columns)
