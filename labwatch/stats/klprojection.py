@@ -117,39 +117,59 @@ class _Mixture:
         w, pos = self.w[self.pos], self.pos
         diff = vertex[pos] - p[pos]
 
-        def slope(s: float) -> float:
-            with np.errstate(divide="ignore", invalid="ignore"):
-                return float(-np.sum(w * diff / (p[pos] + s * diff)))
+        pp = p[pos]
 
-        lo, hi = 0.0, 1.0
-        if slope(hi) <= 0 and np.isfinite(self.objective(vertex)):
+        def derivatives(s: float) -> tuple[float, float]:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ratio = diff / (pp + s * diff)
+            return float(-np.sum(w * ratio)), float(np.sum(w * ratio * ratio))
+
+        if derivatives(1.0)[0] <= 0 and np.isfinite(self.objective(vertex)):
             return 1.0
-        for _ in range(60):
-            mid = 0.5 * (lo + hi)
-            if slope(mid) < 0:
-                lo = mid
+        # safeguarded Newton on the increasing slope; the face solve refines the weights later,
+        # so a rough step suffices
+        lo, hi, s = 0.0, 1.0, 0.0
+        for _ in range(30):
+            d1, d2 = derivatives(s)
+            if not np.isfinite(d1) or d1 > 0:
+                hi = s
             else:
-                hi = mid
+                lo = s
+            if np.isfinite(d1) and abs(d1) < 1e-12:
+                break
+            step = s - d1 / d2 if (np.isfinite(d1) and d2 > 0) else -1.0
+            s = step if lo < step < hi else 0.5 * (lo + hi)
+            if hi - lo < 1e-14:
+                break
         return max(lo, 1e-300)
+
+    def incidence(self, cells: NDArray[np.int64]) -> NDArray[np.float64]:
+        """Dense 0/1 matrix vertex x (cells with w > 0)."""
+        a = np.zeros((cells.shape[0], self.n_cells))
+        a[np.arange(cells.shape[0])[:, None], cells] = 1.0
+        return a[:, self.pos]
 
     def newton(self, cells: NDArray[np.int64], mu: NDArray[np.float64], tol: float, steps: int):
         """Newton iterations on the simplex of the active set; drops vertices that reach 0."""
+        w = self.w[self.pos]
+        inc = self.incidence(cells)
+
+        def objective(weights: NDArray[np.float64]) -> float:
+            pp = weights @ inc
+            if np.any(pp <= 0):
+                return np.inf
+            return float(-(w @ np.log(pp)))
+
         for _ in range(steps):
-            p = self.behaviour(cells, mu)
-            f = self.objective(p)
-            r = np.zeros_like(p)
-            h = np.zeros_like(p)
-            r[self.pos] = self.w[self.pos] / p[self.pos]
-            h[self.pos] = r[self.pos] / p[self.pos]
-            g = -r[cells].sum(axis=1)
+            p = mu @ inc
+            f = float(-(w @ np.log(p)))
+            r = w / p
+            g = -(inc @ r)
             # KKT on the face: every active vertex has sum_c r_c V_vc = sum_c w_c (= -mean g)
             if float(np.max(np.abs(g - mu @ g))) <= tol:
                 break
             k = mu.shape[0]
-            hessian = np.zeros((k, k))
-            for j in range(cells.shape[1]):
-                c = cells[:, j]
-                hessian += (c[:, None] == c[None, :]) * h[c][:, None]
+            hessian = (inc * (r / p)) @ inc.T
             # symmetric diagonal scaling: cells with tiny p make H badly scaled, not singular
             diag = np.diag(hessian)
             scale = 1.0 / np.sqrt(np.maximum(diag, 1e-12 * diag.max()))
@@ -158,6 +178,7 @@ class _Mixture:
             kkt[:k, k] = scale
             kkt[k, :k] = scale
             rhs = np.concatenate([-scale * g, [0.0]])
+            # least squares: vertex sets are often affinely dependent (H singular)
             delta = scale * np.linalg.lstsq(kkt, rhs, rcond=None)[0][:k]
             delta -= delta.mean()  # stay on the simplex despite round-off
             decrement = -float(g @ delta)
@@ -168,27 +189,26 @@ class _Mixture:
             blocking = int(np.argmin(ratios))
             if ratios[blocking] < 1e-6:
                 # a vertex with negligible weight blocks the step: drop it if that is harmless
-                keep = np.arange(mu.shape[0]) != blocking
-                if np.isfinite(self.objective(self.behaviour(cells[keep], mu[keep]))):
-                    cells, mu = cells[keep], mu[keep] / mu[keep].sum()
+                keep = np.arange(k) != blocking
+                if np.isfinite(objective(np.where(keep, mu, 0.0))):
+                    cells, inc, mu = cells[keep], inc[keep], mu[keep] / mu[keep].sum()
                     continue
             # fraction-to-boundary: weights that belong at zero decay geometrically and are
             # dropped below _DROP; a log objective makes the quadratic model overshoot otherwise
-            t = min(1.0, 0.9 * float(np.min(ratios)))
+            t = min(1.0, 0.9 * float(ratios[blocking]))
             accepted = None
             while t > 1e-14:
                 trial = mu + t * delta
-                if self.objective(self.behaviour(cells, trial)) <= f - 1e-4 * t * decrement:
+                if objective(trial) <= f - 1e-4 * t * decrement:
                     accepted = trial
                     break
                 t *= 0.5
             if accepted is None:
                 break  # no descent along the Newton direction: leave it to the outer loop
             keep = accepted > _DROP * accepted.max()
-            if not np.all(keep):
-                if not np.isfinite(self.objective(self.behaviour(cells[keep], accepted[keep]))):
-                    keep = accepted > 0
-            cells, mu = cells[keep], accepted[keep] / accepted[keep].sum()
+            if not np.all(keep) and not np.isfinite(objective(np.where(keep, accepted, 0.0))):
+                keep = accepted > 0
+            cells, inc, mu = cells[keep], inc[keep], accepted[keep] / accepted[keep].sum()
         return cells, mu
 
 

@@ -41,7 +41,7 @@ from labwatch.bell import BellFunctional
 from labwatch.scenario import Scenario
 from labwatch.stats._checks import StatsError, check_option, check_setting_probabilities
 from labwatch.stats.factors import max_local_expectation
-from labwatch.stats.klprojection import LocalProjection, kl_projection
+from labwatch.stats.pbr import PBRFactors
 from labwatch.strategies import vertex_tensor
 
 __all__ = [
@@ -242,7 +242,7 @@ class LocalRealismEnsemble:
         self._lam = np.zeros(self.runs)  # kelly bet for the next batch
         self._log_factor = np.zeros((self.runs, n_cells))  # kelly / pbr next-batch ln F
         self._factor_bound = np.ones(self.runs)
-        self._projections: list[LocalProjection | None] = [None] * self.runs
+        self._pbr_factors = PBRFactors(self.scenario, self.q, self.runs)
         self._set_functional(functional)
         self._prepare_next()
 
@@ -327,23 +327,12 @@ class LocalRealismEnsemble:
         pairs = self._past.reshape(self.runs, shape[0] * shape[1], d)
         n_xy = pairs.sum(axis=2, keepdims=True)
         kappa = max(self.prior_trials, 1e-9)
-        cond = (pairs + kappa / d) / (n_xy + kappa)
-        for r in range(self.runs):
-            if self.trials[r] < self.min_trials or self.trials[r] == 0:
-                self._log_factor[r] = 0.0
-                self._factor_bound[r] = 1.0
-                continue
-            p_hat = cond[r].reshape(shape)
-            proj = kl_projection(p_hat, self.q, tol=1e-9, warm_start=self._projections[r])
-            self._projections[r] = proj
-            ratio = proj.ratio
-            bound = max_local_expectation(ratio, self.q)
-            if bound > 1.0:  # inexact projection: scale down so that (*) holds exactly
-                ratio = ratio / bound
-                bound = max_local_expectation(ratio, self.q)
-            with np.errstate(divide="ignore"):
-                self._log_factor[r] = np.log(ratio).ravel()
-            self._factor_bound[r] = bound
+        predicted = ((pairs + kappa / d) / (n_xy + kappa)).reshape(self.runs, -1)
+        active = (self.trials >= self.min_trials) & (self.trials > 0)
+        self._log_factor, self._factor_bound = self._pbr_factors.factors(predicted, active)
+        if self.check_factors:  # independent exhaustive check via labwatch.strategies
+            for r, f in enumerate(self.next_factor()):
+                self._factor_bound[r] = max(self._factor_bound[r], max_local_expectation(f, self.q))
 
     def _prepare_next(self) -> None:
         if self.method == "kelly":
