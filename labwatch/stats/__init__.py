@@ -26,6 +26,7 @@ from labwatch.stats.confseq import (
     MeanSequenceSnapshot,
 )
 from labwatch.stats.factors import lambda_max, linear_factor, max_local_expectation, score_tensor
+from labwatch.stats.forecast import TimeToTarget, forecast_time_to_target
 from labwatch.stats.intervals import (
     ConfidenceInterval,
     OutcomeIntervals,
@@ -44,6 +45,14 @@ from labwatch.stats.supermartingale import (
     LocalRealismTest,
     default_bet_grid,
 )
+from labwatch.stats.target import (
+    TARGET_FORMS,
+    ConfidenceTarget,
+    TargetDecision,
+    TargetParseError,
+    TargetWatch,
+    parse_target,
+)
 
 __all__ = [
     "BETTING_METHODS",
@@ -53,6 +62,7 @@ __all__ = [
     "BoundedMeanSequence",
     "MeanSequenceSnapshot",
     "ConfidenceInterval",
+    "ConfidenceTarget",
     "LocalProjection",
     "LocalRealismEnsemble",
     "LocalRealismResult",
@@ -61,14 +71,21 @@ __all__ = [
     "SigmaFigure",
     "StatisticalStrength",
     "StatsError",
+    "TARGET_FORMS",
+    "TargetDecision",
+    "TargetParseError",
+    "TargetWatch",
+    "TimeToTarget",
     "clopper_pearson",
     "clopper_pearson_array",
     "clopper_pearson_counts",
     "default_bet_grid",
+    "forecast_time_to_target",
     "kl_projection",
     "lambda_max",
     "linear_factor",
     "max_local_expectation",
+    "parse_target",
     "score_tensor",
     "sigma_figure",
     "statistical_strength",

@@ -41,6 +41,7 @@ from labwatch.bell import BellFunctional
 from labwatch.scenario import Scenario
 from labwatch.stats._checks import StatsError, check_option, check_setting_probabilities
 from labwatch.stats.factors import max_local_expectation
+from labwatch.stats.forecast import TimeToTarget, forecast_time_to_target
 from labwatch.stats.pbr import PBRFactors
 from labwatch.strategies import vertex_tensor
 
@@ -521,6 +522,24 @@ class LocalRealismTest:
     def batch_increments(self) -> tuple[tuple[int, float], ...]:
         """``(trials in batch, change of ln M)`` for every batch (input of the forecast)."""
         return tuple(self._increments)
+
+    def forecast(
+        self, p_target: float, trial_rate: float | None = None, **options: object
+    ) -> TimeToTarget:
+        """Time-to-target forecast from the batch increments so far.
+
+        ``options`` go to :func:`labwatch.stats.forecast.forecast_time_to_target`
+        (``window_trials``, ``growth_per_trial``).
+        """
+        e = self._engine
+        return forecast_time_to_target(
+            self._increments,
+            p_target,
+            float(e.log_m[0]),
+            float(e.log_m_max[0]),
+            trial_rate,
+            **options,  # type: ignore[arg-type]
+        )
 
     def next_factor(self) -> NDArray[np.float64]:
         """The test factor the next trial will use, shape (m_A, m_B, d_A, d_B)."""
