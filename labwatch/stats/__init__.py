@@ -25,7 +25,14 @@ from labwatch.stats.confseq import (
     BoundedMeanSequence,
     MeanSequenceSnapshot,
 )
-from labwatch.stats.factors import lambda_max, linear_factor, max_local_expectation, score_tensor
+from labwatch.stats.factors import (
+    choose_functional,
+    kelly_growth,
+    lambda_max,
+    linear_factor,
+    max_local_expectation,
+    score_tensor,
+)
 from labwatch.stats.forecast import TimeToTarget, forecast_time_to_target
 from labwatch.stats.intervals import (
     ConfidenceInterval,
@@ -76,11 +83,13 @@ __all__ = [
     "TargetParseError",
     "TargetWatch",
     "TimeToTarget",
+    "choose_functional",
     "clopper_pearson",
     "clopper_pearson_array",
     "clopper_pearson_counts",
     "default_bet_grid",
     "forecast_time_to_target",
+    "kelly_growth",
     "kl_projection",
     "lambda_max",
     "linear_factor",

@@ -16,6 +16,8 @@ The linear factors ``T = 1 + lam (Z - L)`` with score ``Z = beta / q`` satisfy (
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
@@ -24,6 +26,8 @@ from labwatch.stats._checks import StatsError, check_setting_probabilities
 from labwatch.strategies import maximize_over_strategies
 
 __all__ = [
+    "choose_functional",
+    "kelly_growth",
     "lambda_max",
     "linear_factor",
     "max_local_expectation",
@@ -85,3 +89,56 @@ def max_local_expectation(factor: ArrayLike, setting_probabilities: ArrayLike) -
         raise StatsError("a test factor must be finite and non-negative")
     q = check_setting_probabilities(setting_probabilities, f.shape[:2], strictly_positive=False)
     return maximize_over_strategies(q[:, :, None, None] * f).value
+
+
+def kelly_growth(
+    functional: BellFunctional,
+    setting_probabilities: ArrayLike,
+    counts: ArrayLike,
+    max_fraction: float = 0.9,
+) -> tuple[float, float]:
+    """Best linear bet on past random-setting counts and its empirical growth.
+
+    Maximises ``G(lam) = sum_c p_hat(c) ln(1 + lam (Z(c) - L))`` over
+    ``0 <= lam <= max_fraction / (L - Z_min)``, ``p_hat`` the joint frequencies of
+    ``counts[x, y, a, b]``.
+
+    Returns
+    -------
+    lam, growth : float
+        The bet and ``G(lam)`` in nats per trial (0, 0 when nothing is worth betting).
+    """
+    n = functional.scenario.check_counts(counts).ravel().astype(np.float64)
+    total = n.sum()
+    if total == 0:
+        return 0.0, 0.0
+    p_hat = n / total
+    excess = (score_tensor(functional, setting_probabilities) - functional.local_bound).ravel()
+    cap = max_fraction * lambda_max(functional, setting_probabilities)
+    if p_hat @ excess <= 0:
+        return 0.0, 0.0
+    lo, hi = 0.0, cap
+    for _ in range(60):  # the slope of the concave growth decreases in lam
+        mid = 0.5 * (lo + hi)
+        if p_hat @ (excess / (1.0 + mid * excess)) > 0:
+            lo = mid
+        else:
+            hi = mid
+    return lo, float(p_hat @ np.log1p(lo * excess))
+
+
+def choose_functional(
+    candidates: Sequence[BellFunctional],
+    setting_probabilities: ArrayLike,
+    counts: ArrayLike,
+) -> BellFunctional:
+    """The candidate with the largest empirical Kelly growth on ``counts``.
+
+    Feed it past counts only and hand the result to ``LocalRealismTest.update_functional``
+    before the next batch: the choice is then predictable and the test stays valid.  Useful
+    when the sign conventions of a setup are not known (e.g. the eight CHSH facets).
+    """
+    if not candidates:
+        raise StatsError("choose_functional needs at least one candidate")
+    growths = [kelly_growth(f, setting_probabilities, counts)[1] for f in candidates]
+    return candidates[int(np.argmax(growths))]

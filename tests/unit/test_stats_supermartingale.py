@@ -7,12 +7,14 @@ import math
 import numpy as np
 import pytest
 
-from labwatch.bell import BellFunctional, cglmp, ch_eberhard, chsh
+from labwatch.bell import BellFunctional, cglmp, ch_eberhard, chsh, chsh_relabelings
 from labwatch.stats import (
     BETTING_METHODS,
     LocalRealismEnsemble,
     LocalRealismTest,
     StatsError,
+    choose_functional,
+    kelly_growth,
     max_local_expectation,
 )
 from labwatch.strategies import vertex_values
@@ -165,9 +167,14 @@ def test_update_functional_between_batches() -> None:
     p = werner(1.0)[::-1, ::-1]  # relabel settings so that E00 carries the minus sign
     test = LocalRealismTest(chsh(), q)
     gen = random_setting_counts(rng, p, q, [100] * 10, 1)
-    test.update(next(gen)[0])
+    first = next(gen)[0]
+    test.update(first)
     before = test.log_m
-    test.update_functional(chsh(minus=(0, 0)))
+    chosen = choose_functional(chsh_relabelings(), q, first)  # from past data only
+    assert chosen.name == chsh(minus=(0, 0)).name
+    lam, growth = kelly_growth(chosen, q, first)
+    assert lam > 0 and growth > 0
+    test.update_functional(chosen)
     for counts in gen:
         test.update(counts[0])
     assert test.log_m > before + 5
