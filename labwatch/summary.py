@@ -109,7 +109,11 @@ def summary_dict(
         )
     out["contrast"] = to_jsonable(snapshot.contrast)
     out["figures"] = {f.name: to_jsonable(f) for f in snapshot.figures}
-    out.update({k: to_jsonable(v) for k, v in snapshot.extras.items()})
+    extras = {k: to_jsonable(v) for k, v in snapshot.extras.items()}
+    # the functional's bounds live beside its name, which stays a plain string
+    if "functional" in extras:
+        extras["functional_info"] = extras.pop("functional")
+    out.update(extras)
     return out
 
 
