@@ -75,7 +75,7 @@ from labwatch.polytope.coordinates import (
     to_cg,
     vertex_columns,
 )
-from labwatch.polytope.pricing import best_vertices, best_vertices_both_sides
+from labwatch.polytope.pricing import best_vertices_both_sides
 from labwatch.scenario import Scenario, ScenarioError
 from labwatch.strategies import party_strategies, vertex_tensor
 
@@ -441,6 +441,8 @@ class VisibilitySolver:
         )
         self._strat_a = np.concatenate([self._strat_a, sa])
         self._strat_b = np.concatenate([self._strat_b, sb])
+        if self.method == "enumeration":  # kept to score every vertex cheaply
+            self._enum_starts, self._enum_indices = starts[:-1], indices
 
     @property
     def columns(self) -> int:
@@ -490,13 +492,14 @@ class VisibilitySolver:
             solve_checked(h, "visibility LP")
             solves += 1
             pivots += int(h.getInfo().simplex_iteration_count)
-            y = np.asarray(h.getSolution().row_dual)
+            sol = h.getSolution()
+            y = np.asarray(sol.row_dual)
             if self.method == "enumeration":
                 # Exact maximum (cheap here) so the certificate's local bound is exactly 1.
-                top = float(best_vertices(y, self.scenario, 1).values[0])
+                top = float(np.max(np.add.reduceat(y[self._enum_indices], self._enum_starts)))
                 center, best_bound = self._normalise(y, top, rhs)
                 break
-            lower = 1.0 / (1.0 + float(h.getSolution().col_value[0]))
+            lower = 1.0 / (1.0 + float(sol.col_value[0]))
             # Price at a point between the best functional so far and the master's duals
             # (Wentges smoothing); fall back to the master's duals when that finds nothing.
             added = False
