@@ -45,7 +45,7 @@ def test_time_uniform_coverage_for_iid_data(method: str) -> None:
     # i.i.d. three-valued variable, peeked after each of 20 geometrically growing batches up to
     # ~17 000 trials.  The sequence must cover the true mean at all peeks at once in >= 90% of
     # runs at alpha = 0.1.  Monte-Carlo margin: 600 runs, if the true miss rate were exactly 0.1
-    # an observed rate above 0.13 would have probability ~0.6% (binomial tail).
+    # an observed rate above 0.13 would have probability ~0.75% (binomial tail).
     rng = np.random.default_rng(20240101 + len(method))
     runs, alpha = 600, 0.1
     support = np.tile([0.0, 0.3, 1.0], (runs, 1))
@@ -99,7 +99,7 @@ def test_bell_value_sequence_covers_the_true_value_with_block_settings() -> None
     # Werner-type correlations, settings in blocks of 200 trials of one pair, cycling through
     # the pairs, 200 runs, peeked after every full cycle.  The union-bounded lower and upper
     # bounds must cover S at all peeks in >= 95% of runs at alpha = 0.05 (margin: an observed
-    # rate above 9% has probability < 0.5% if the true rate were 5%).
+    # rate above 9% has probability ~0.6% if the true rate were 5%).
     f = chsh()
     signs = np.array([[1.0, 1.0], [1.0, -1.0]])
     parity = np.array([[1.0, -1.0], [-1.0, 1.0]])

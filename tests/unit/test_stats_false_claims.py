@@ -9,8 +9,8 @@ batch (the design note's protocol):
 
 The stopping-safe test (Ville's inequality: P(sup M >= 1/alpha) <= alpha) may claim a violation
 at alpha = 0.01 in at most 1.5% of runs.  Monte-Carlo margin: if a method's true rate were
-exactly 1%, the chance to observe more than 1.5% of 2000 runs is about 1.4% (binomial tail,
-mean 20, 30 or more needed); the measured rates are several times below 1%.  The naive rule
+exactly 1%, the chance to observe more than 1.5% of 2000 runs is about 1.3% (binomial tail,
+mean 20, 31 or more needed); the measured rates are several times below 1%.  The naive rule
 "(S - 2)/sigma > 2.326 at any peek" is shown to exceed its nominal 1% by far (the design note
 measured about 14% for the mixture); this is why that figure is labelled "fixed n".
 """

@@ -1,9 +1,9 @@
 """Monte-Carlo validation of the PBR betting method against local sources (peeked per batch).
 
-Same protocol as ``test_stats_false_claims.py`` with fewer, growing batches (the PBR factor
+Same protocol as ``test_stats_false_claims.py`` with fewer, larger batches (the PBR factor
 needs one KL projection per run and batch): 2000 runs, 10 batches of 100 then 10 of 400,
 peeked after each.  Claim rate at alpha = 0.01 must be at most 1.5% (Monte-Carlo margin as
-there: about 1.4% chance to exceed it if the true rate were exactly 1%).  Every PBR factor the
+there: about 1.3% chance to exceed it if the true rate were exactly 1%).  Every PBR factor the
 code builds is checked exhaustively over deterministic strategies (``factor_bound <= 1``).
 """
 
