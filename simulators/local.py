@@ -271,19 +271,27 @@ def adaptive_local_counts(
     q = _check_q(setting_probabilities, (m_a, m_b))
     q_flat = q.ravel()
     table = _VertexTable(functional)
-    n = np.zeros((runs, m_a * m_b))
+    pairs = m_a * m_b
+    cells = d_a * d_b
+    # flat cell index (within its setting pair) of every vertex's answer: (V, pairs)
+    pair_x = np.arange(pairs) // m_b
+    pair_y = np.arange(pairs) % m_b
+    answer = table.a[:, pair_x] * d_b + table.b[:, pair_y]
+    n = np.zeros((runs, pairs))
     cum_q = np.cumsum(q_flat)
     cum_q[-1] = 1.0
-    rows = np.arange(runs)
+    offset = np.arange(runs) * (pairs * cells)
+    flat_n = n.reshape(-1)
     for size in batch_sizes:
-        batch = np.zeros((runs, m_a * m_b, d_a * d_b), dtype=np.int64)
-        for _ in range(int(size)):
-            v = _choose(table, q_flat, n)  # before this trial's settings are drawn
-            pair = np.searchsorted(cum_q, rng.random(runs), side="right")
-            x, y = pair // m_b, pair % m_b
-            a = table.a[v, x]
-            b = table.b[v, y]
-            cell = a * d_b + b
-            batch[rows, pair, cell] += 1
-            n[rows, pair] += 1
+        size = int(size)
+        # settings are drawn independently of everything, so drawing the batch's settings
+        # up front changes nothing: each strategy below is still chosen before its trial
+        drawn = np.searchsorted(cum_q, rng.random((size, runs)), side="right")
+        hits = np.empty((size, runs), dtype=np.int64)
+        for i in range(size):
+            v = _choose(table, q_flat, n)  # from the memory of earlier trials only
+            pair = drawn[i]
+            hits[i] = offset + pair * cells + answer[v, pair]
+            flat_n[offset // cells + pair] += 1
+        batch = np.bincount(hits.ravel(), minlength=runs * pairs * cells)
         yield batch.reshape((runs,) + shape)
