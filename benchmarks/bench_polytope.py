@@ -13,8 +13,8 @@ Baseline: every solve rebuilds the full vertex matrix (sparse) and calls
 w >= 0``.  Above ``BASELINE_MAX_VERTICES`` it is not built.
 
 Each case runs in its own subprocess so the peak resident memory (``ru_maxrss``, which
-includes the HiGHS C++ heap that tracemalloc cannot see) belongs to that case alone; the
-Python-heap peak from tracemalloc is printed next to it.
+includes the HiGHS C++ heap that tracemalloc cannot see) belongs to that case alone.
+tracemalloc is not used: its allocation hooks would inflate the millisecond timings.
 
 Run:  .venv/bin/python benchmarks/bench_polytope.py  [--quick]
 """
@@ -27,7 +27,6 @@ import resource
 import subprocess
 import sys
 import time
-import tracemalloc
 
 import numpy as np
 
@@ -110,7 +109,6 @@ def run_case(m: int, d: int, which: str, refreshes: int) -> dict:
         (1 - REFRESH_STEP) * p + REFRESH_STEP * random_local(p.shape, rng) for _ in range(refreshes)
     ]
     out: dict = {"m": m, "d": d, "vertices": sc.local_vertices, "which": which}
-    tracemalloc.start()
     if which == "engine":
         t0 = time.perf_counter()
         solver = VisibilitySolver(sc)
@@ -137,8 +135,6 @@ def run_case(m: int, d: int, which: str, refreshes: int) -> dict:
             baseline_solve(q)
             times.append(time.perf_counter() - t0)
         out["refresh"] = float(np.median(times))
-    out["py_peak_mb"] = tracemalloc.get_traced_memory()[1] / 2**20
-    tracemalloc.stop()
     out["rss_peak_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     return out
 

@@ -35,8 +35,8 @@ is a Bell functional with ``F(D) <= 0`` on the local polytope, ``F(n) = -1`` and
 so that **white noise scores 0, the local bound is 1 and the data score** ``I(p) = 1 / v^*``:
 ``v^* < 1`` exactly when the data violate ``I <= 1``.  Its coefficients (``M^T y`` plus a
 constant) spread each marginal term evenly over the other party's settings.  The shift uses
-the exact maximum of ``F`` over the vertices (pricing oracle), so the local bound is 1 up to
-rounding, not up to the LP tolerance; :class:`labwatch.bell.BellFunctional` recomputes it.
+the exact maximum of ``F`` over the vertices (all columns for enumeration, the pricing oracle
+for column generation), so the local bound is 1 up to rounding, not up to the LP tolerance; :class:`labwatch.bell.BellFunctional` recomputes it.
 
 Column generation
 -----------------
