@@ -34,11 +34,12 @@ def _construct() -> highspy.Highs:
     if _banner_shown:
         return highspy.Highs()
     _banner_shown = True
+    fd = 1  # the C library writes to file descriptor 1, whatever sys.stdout is
     try:
-        fd = sys.stdout.fileno()
-    except (AttributeError, OSError, ValueError):
-        return highspy.Highs()  # no real stdout (e.g. a notebook kernel): nothing to protect
-    sys.stdout.flush()
+        os.fstat(fd)
+        sys.stdout.flush()
+    except (OSError, ValueError, AttributeError):
+        return highspy.Highs()
     saved = os.dup(fd)
     try:
         with open(os.devnull, "w") as null:
