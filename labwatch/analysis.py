@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from statistics import NormalDist
 from typing import Any
 
 import numpy as np
@@ -23,7 +24,9 @@ from labwatch.polytope import (
 )
 from labwatch.scenario import Scenario
 from labwatch.snapshot import Figure, RateFigures
-from labwatch.stats import LocalRealismTest
+from labwatch.stats import LocalRealismTest, statistical_strength
+from labwatch.stats.confseq import BellValueSequence
+from labwatch.stats.target import TargetWatch, parse_target
 
 __all__ = [
     "FUNCTIONAL_CHOICES",
@@ -128,6 +131,8 @@ class AnalysisConfig:
             raise ValueError(f"functional {self.functional!r} not in {FUNCTIONAL_CHOICES}")
         if not 0 < self.confidence_level < 1:
             raise ValueError(f"confidence_level must be in (0, 1), got {self.confidence_level}")
+        if self.target is not None:
+            parse_target(self.target)  # raises with the allowed forms
 
 
 @dataclass(frozen=True)
@@ -144,6 +149,13 @@ class EpochFigures:
     figures: tuple[Figure, ...]
     extras: dict[str, Any]
 
+
+#: What each kind of confidence target assumes.
+_TARGET_ASSUMPTIONS = {
+    "p_value": ("random settings", "stopping-safe"),
+    "bell_lcb": ("i.i.d.", "stopping-safe"),
+    "visibility_ucb": ("fixed n", "Gaussian", "i.i.d."),
+}
 
 BLOCK_SETTINGS_NOTE = (
     "settings held in blocks: these data cannot test local realism (a local model can fake "
@@ -168,6 +180,9 @@ class Analyzer:
         self._solver: VisibilitySolver | None = None
         self._lrt: LocalRealismTest | None = None
         self._lrt_functional: BellFunctional | None = None
+        self._sequence: BellValueSequence | None = None
+        self._target = None if self.config.target is None else TargetWatch(self.config.target)
+        self._visibility_fig: Figure | None = None
         self.epochs = 0
 
     def _resolve_functional(self) -> BellFunctional | None:
@@ -243,6 +258,11 @@ class Analyzer:
         low = high = math.nan
         if cv.interval is not None:
             low, high = cv.interval.low, cv.interval.high
+        self._visibility_fig = Figure(
+            "visibility",
+            cv.visibility,
+            cv.stderr,
+        )
         figures.append(
             Figure(
                 "visibility",
@@ -349,6 +369,126 @@ class Analyzer:
             "realised_growth_per_trial": res.realised_growth_per_trial,
         }
 
+    def _sequence_bound(
+        self, acc: RunAccumulator, epoch_counts: NDArray[np.int64], figures: list[Figure]
+    ) -> None:
+        f = self._fixed  # a confidence sequence needs one functional for the whole run
+        if f is None:
+            return
+        if self._sequence is None:
+            self._sequence = BellValueSequence(f, no_click_discarded=not acc.no_click)
+        if epoch_counts.any():
+            self._sequence.update(epoch_counts)
+        alpha = 1.0 - self.config.confidence_level
+        totals = acc.counts.sum(axis=(2, 3))
+        if np.any(totals == 0):
+            return
+        lo = self._sequence.lower_bound(alpha)
+        hi = self._sequence.upper_bound(alpha)
+        figures.append(
+            Figure(
+                "bell_lcb",
+                lo,
+                low=lo,
+                high=hi,
+                confidence_level=self.config.confidence_level,
+                assumptions=tuple(
+                    a
+                    for a in self._sequence.assumptions
+                    if acc.block_settings or "block settings" not in a
+                ),
+                note="confidence sequence of the Bell value (valid at every look); "
+                "an estimate under i.i.d., not a test of local realism",
+            )
+        )
+
+    def _strength(self, acc: RunAccumulator, extras: dict[str, Any]) -> None:
+        totals = acc.counts.sum(axis=(2, 3))
+        if np.any(totals == 0) or acc.scenario.local_vertices > 10**7:
+            return
+        q = acc.setting_probabilities
+        freq = acc.counts / totals[:, :, None, None]
+        try:
+            st = statistical_strength(freq, q)
+        except (ValueError, ArithmeticError) as exc:
+            extras["strength_note"] = f"not computed: {exc}"[:200]
+            return
+        p_target = self._p_target()
+        extras["strength"] = {
+            "kl_nats_per_trial": st.nats_per_trial,
+            "p_target": p_target,
+            "min_trials": st.minimum_trials(p_target) if st.nats_per_trial > 0 else None,
+            "note": "KL divergence of the observed frequencies to the nearest local model, "
+            "weighted by the setting probabilities: the best possible evidence rate",
+        }
+
+    def _p_target(self) -> float:
+        t = self._target.target if self._target is not None else None
+        if t is not None and t.kind == "p_value" and t.threshold is not None:
+            return float(t.threshold)
+        return 1e-6
+
+    def _forecast(self, acc: RunAccumulator, rate_hz: float, extras: dict[str, Any]) -> None:
+        if self._lrt is None or self._lrt.trials == 0:
+            return
+        p_target = self._p_target()
+        try:
+            fc = self._lrt.forecast(p_target, rate_hz if rate_hz > 0 else None)
+        except ValueError as exc:
+            extras["forecast_note"] = f"no forecast: {exc}"[:200]
+            return
+        extras["forecast"] = {
+            "p_target": p_target,
+            "reached": fc.reached,
+            "trials": fc.trials,
+            "trials_low": fc.trials_low,
+            "trials_high": fc.trials_high,
+            "seconds": fc.seconds,
+            "seconds_low": fc.seconds_low,
+            "seconds_high": fc.seconds_high,
+            "growth_per_trial": fc.growth_per_trial,
+            "growth_stderr": fc.growth_stderr,
+            "assumptions": list(fc.assumptions),
+        }
+
+    def _check_target(
+        self, acc: RunAccumulator, figures: list[Figure], extras: dict[str, Any]
+    ) -> None:
+        if self._target is None:
+            return
+        by_name = {f.name: f for f in figures}
+        vis = self._visibility_fig
+
+        def visibility_ucb(alpha: float) -> float:
+            assert vis is not None
+            return vis.value + NormalDist().inv_cdf(1.0 - alpha) * vis.stderr
+
+        seq = self._sequence
+        figs: dict[str, object] = {
+            "random_settings": acc.random_settings and not acc.block_settings,
+            "time": (acc.t_last or 0.0) - (acc.t_first or 0.0),
+            "trials": acc.trials,
+        }
+        if "p_value" in by_name:
+            figs["p_value"] = by_name["p_value"].value
+        if seq is not None and "bell_lcb" in by_name:
+            figs["bell_lcb"] = seq.lower_bound
+            figs["local_bound"] = seq.functional.local_bound
+        if vis is not None and "visibility" in by_name and math.isfinite(vis.stderr):
+            figs["visibility_ucb"] = visibility_ucb
+        d = self._target.check(figs)
+        extras["target"] = {
+            "description": d.target,
+            "met": d.met,
+            "fired_now": d.fired_now,
+            "met_at_source_time": d.time if d.met else None,
+            "trials": d.trials,
+            "value": d.value,
+            "threshold": d.threshold,
+            "reason": d.reason,
+            "assumptions": list(_TARGET_ASSUMPTIONS[self._target.target.kind]),
+        }
+
     def analyze(self, acc: RunAccumulator, epoch_counts: NDArray[np.int64]) -> EpochFigures:
         """Figures for the run so far; ``epoch_counts`` are the counts added since last epoch."""
         figures: list[Figure] = []
@@ -357,7 +497,13 @@ class Analyzer:
         f = self._fixed if self._fixed is not None else self._certificate
         self._functional = f
         self._evidence(acc, epoch_counts, f, figures, extras)
+        self._visibility_fig = None
         self._visibility(acc, figures, extras)
+        self._sequence_bound(acc, epoch_counts, figures)
+        rates = self.rates(acc)
+        self._strength(acc, extras)
+        self._forecast(acc, rates.coincidence_hz, extras)
+        self._check_target(acc, figures, extras)
         bell = f.evaluate_counts(acc.counts) if f is not None else None
         bell_w = f.evaluate_counts(acc.window.total) if f is not None else None
         if f is not None:
@@ -377,7 +523,7 @@ class Analyzer:
             correlators=None if corr is None else corr[0],
             correlator_errors=None if corr is None else corr[1],
             contrast=correlation_contrast(acc.counts),
-            rates=self.rates(acc),
+            rates=rates,
             figures=tuple(figures),
             extras=extras,
         )

@@ -63,6 +63,25 @@ def run_watch(args: argparse.Namespace) -> int:
 
         stopper = StopOnTarget(args.control or _control_default(args.endpoint), curve=curve)
 
+    met_wall: float | None = None
+
+    def target_met(snapshot) -> None:
+        # fires once, inside ingest, at the snapshot where the target is first met
+        nonlocal met_wall
+        met_wall = time.time()
+        target = snapshot.extras["target"]
+        msg = (
+            f"TARGET MET: {target['description']} ({target['reason']}) after "
+            f"{target['trials']} trials, {target['met_at_source_time']:.1f} s of source time"
+        )
+        print(msg, file=sys.stderr if args.json else sys.stdout, flush=True)
+        if stopper is not None:
+            reply = stopper.send_stop()
+            print(f"stop command to the source: {reply}", file=sys.stderr, flush=True)
+        session.stop()
+
+    engine.on_target(target_met)
+
     def tick(snapshot, health) -> bool:
         if not args.quiet:
             line = status_line(snapshot, health, now=time.time(), silence_after_s=silence_after)
@@ -72,14 +91,7 @@ def run_watch(args: argparse.Namespace) -> int:
             if session.recording_error:
                 line += f" | {session.recording_error}"
             print(line, file=sys.stderr if args.json else sys.stdout, flush=True)
-        target = snapshot.extras.get("target") if snapshot is not None else None
-        if isinstance(target, dict) and target.get("met"):
-            msg = f"TARGET MET: {target.get('description')} after {target.get('trials')} trials"
-            print(msg, file=sys.stderr if args.json else sys.stdout, flush=True)
-            if stopper is not None:
-                stopper.send_stop()
-            return True
-        return False
+        return met_wall is not None
 
     try:
         final = session.run_blocking(args.duration, on_tick=tick)
@@ -98,6 +110,8 @@ def run_watch(args: argparse.Namespace) -> int:
     out["link"] = dataclasses.asdict(session.link)
     target = out.get("target")
     out["target_met"] = bool(isinstance(target, dict) and target.get("met"))
+    if met_wall is not None:
+        out["target_met_after_wall_s"] = met_wall - started
     if stopper is not None:
         out["stop_command"] = stopper.result
     if recorder is not None:

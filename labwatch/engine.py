@@ -80,6 +80,10 @@ class IngestResult:
     snapshots: tuple[Snapshot, ...] = ()
 
 
+# Shared results of the common case (accepted, no snapshot): IngestResult is frozen.
+_ACCEPTED = {kind: IngestResult(True, kind) for kind in ("hist", "events")}
+
+
 class MonitorEngine:
     """Validate, sequence-check, accumulate and analyse a coincidence stream.
 
@@ -97,6 +101,9 @@ class MonitorEngine:
     ) -> None:
         self.config = config or EngineConfig()
         self._callbacks: list[Callable[[Snapshot], None]] = []
+        self._target_callbacks: list[Callable[[Snapshot], None]] = []
+        self.callback_errors = 0
+        self.last_callback_error: str | None = None
         if on_snapshot is not None:
             self._callbacks.append(on_snapshot)
         self.tracker = SequenceTracker()
@@ -122,13 +129,22 @@ class MonitorEngine:
         self.epoch = 0
         self.runs_seen = 0
         self.closed_clock_jumps = 0
-        self._epoch_counts: np.ndarray | None = None
+        # run counts at the last epoch close: an epoch's counts are run.counts minus this
+        self._epoch_base: np.ndarray | None = None
         self._next_epoch_t = math.inf
 
     # ------------------------------------------------------------------ subscriptions
     def subscribe(self, callback: Callable[[Snapshot], None]) -> None:
         """Call ``callback(snapshot)`` for every new snapshot."""
         self._callbacks.append(callback)
+
+    def on_target(self, callback: Callable[[Snapshot], None]) -> None:
+        """Call ``callback(snapshot)`` once, with the snapshot at which the target is first met.
+
+        The target is :attr:`AnalysisConfig.target`; its decision is in
+        ``snapshot.extras["target"]``.
+        """
+        self._target_callbacks.append(callback)
 
     # ------------------------------------------------------------------ ingest
     def ingest(self, frames: Sequence[bytes], received_wall: float = math.nan) -> IngestResult:
@@ -171,7 +187,12 @@ class MonitorEngine:
     def _ingest_batch(self, batch: CountBatch, wall: float) -> IngestResult:
         snaps: list[Snapshot] = []
         known_run = self.tracker.current_run(batch.source)
-        if self.run is not None and known_run == batch.run and batch.scenario != self.run.scenario:
+        if (
+            self.run is not None
+            and known_run == batch.run
+            and batch.scenario is not self.run.scenario
+            and batch.scenario != self.run.scenario
+        ):
             return self._reject(
                 "scenario_change",
                 f"run {batch.run!r} declared {self.run.scenario.shape}, message has {batch.scenario.shape}",
@@ -188,7 +209,7 @@ class MonitorEngine:
             if self.run is not None:
                 snaps.extend(self._close_epoch())
             self._start_run(batch.source, batch.run, batch.scenario, batch.t_start)
-        assert self.run is not None and self._epoch_counts is not None
+        assert self.run is not None and self._epoch_base is not None
         jumps = self.run.clock_jumps
         self.run.add(batch)
         self.accepted += 1
@@ -199,11 +220,12 @@ class MonitorEngine:
             snaps.extend(self._close_epoch())
             self._epoch_origin = batch.t_start
             self._next_epoch_t = batch.t_start + self.config.epoch_s
-        self._epoch_counts += batch.counts
         if batch.t_stop >= self._next_epoch_t:
             snaps.extend(self._close_epoch())
             k = math.floor((batch.t_stop - self._epoch_origin) / self.config.epoch_s) + 1
             self._next_epoch_t = self._epoch_origin + k * self.config.epoch_s
+        if not snaps:
+            return _ACCEPTED.get(batch.kind) or IngestResult(True, batch.kind)
         return IngestResult(True, batch.kind, snapshots=tuple(snaps))
 
     def _start_run(self, source: str, run: str, scenario, t0: float) -> None:
@@ -214,7 +236,7 @@ class MonitorEngine:
         )
         self.runs_seen += 1
         self.analyzer = Analyzer(scenario, self.config.analysis)
-        self._epoch_counts = np.zeros(scenario.shape, dtype=np.int64)
+        self._epoch_base = np.zeros(scenario.shape, dtype=np.int64)
         self._epoch_origin = t0
         self._next_epoch_t = t0 + self.config.epoch_s
 
@@ -277,17 +299,18 @@ class MonitorEngine:
 
     def _close_epoch(self) -> tuple[Snapshot, ...]:
         run, analyzer = self.run, self.analyzer
-        if run is None or analyzer is None or self._epoch_counts is None or run.messages == 0:
+        if run is None or analyzer is None or self._epoch_base is None or run.messages == 0:
             return ()
+        counts = run.counts.copy()
+        epoch_counts = counts - self._epoch_base
         if (
-            not self._epoch_counts.any()
+            not epoch_counts.any()
             and self.latest is not None
             and self.latest.run == run.run
             and self.latest.run_index == run.index
         ):
             return ()
-        figs = analyzer.analyze(run, self._epoch_counts)
-        counts = run.counts.copy()
+        figs = analyzer.analyze(run, epoch_counts)
         counts.setflags(write=False)
         window = run.window.total.copy()
         window.setflags(write=False)
@@ -318,11 +341,23 @@ class MonitorEngine:
             extras=figs.extras,
         )
         self.epoch += 1
-        self._epoch_counts[:] = 0
+        self._epoch_base = counts
         self.latest = snap
         for cb in self._callbacks:
-            cb(snap)
+            self._call(cb, snap)
+        target = snap.extras.get("target")
+        if isinstance(target, dict) and target.get("fired_now"):
+            for cb in self._target_callbacks:
+                self._call(cb, snap)
         return (snap,)
+
+    def _call(self, cb: Callable[[Snapshot], None], snap: Snapshot) -> None:
+        # a failing view or user callback must not stop the monitor; it is counted and kept
+        try:
+            cb(snap)
+        except Exception as exc:  # noqa: BLE001
+            self.callback_errors += 1
+            self.last_callback_error = f"{type(exc).__name__}: {exc}"[:300]
 
     def with_health(self, snapshot: Snapshot) -> Snapshot:
         """``snapshot`` with the health figures brought up to now (for views)."""

@@ -104,3 +104,19 @@ def test_block_settings_say_they_cannot_test_local_realism(run_cli):
     sim.kill()
     assert "cannot test local realism" in res["local_realism"]
     assert "p_value" not in res["figures"]
+
+
+def test_random_setting_run_stops_itself_at_the_target(run_cli):
+    port = free_port()
+    ep, ctl = f"tcp://127.0.0.1:{port}", f"tcp://127.0.0.1:{free_port()}"
+    sim = run_cli("simulate", ep, "--control", ctl, "--settings", "random", "--visibility", "0.9", "--duration", "120", "--seed", "4")
+    res = watch_json(run_cli, ep, "--duration", "60", "--target", "p<=1e-6", "--stop-source", "--control", ctl)
+    sim_out, sim_err = sim.communicate(timeout=30)  # the source stops by command, long before 120 s
+    assert sim.returncode == 0 and "stopped by command" in sim_err
+    assert res["target_met"] is True
+    t = res["target"]
+    assert t["met"] and t["value"] <= 1e-6 and t["trials"] > 0 and t["met_at_source_time"] > 0
+    assert t["assumptions"] == ["random settings", "stopping-safe"]
+    assert res["stop_command"]["ok"] is True
+    assert res["wall_time_s"] < 30
+    assert res["figures"]["p_value"]["value"] <= 1e-6
