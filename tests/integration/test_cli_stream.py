@@ -27,7 +27,9 @@ def test_simulated_chsh_matches_born_rule(run_cli):
     res = watch_json(run_cli, ep, "--duration", "6", "--no-lp")
     sim.wait(30)
     # Expected S from the simulator's own Born-rule + detector probabilities (not hard-coded).
-    src = polarization_source(visibility=0.95, pair_rate_hz=50000.0, efficiency=0.25, dark_rate_hz=0.0)
+    src = polarization_source(
+        visibility=0.95, pair_rate_hz=50000.0, efficiency=0.25, dark_rate_hz=0.0
+    )
     expected = chsh().evaluate(src.probabilities(0.0)).value
     # Tsirelson bound 2*sqrt(2) times V for Werner states: Cirel'son, Lett. Math. Phys. 4, 93 (1980)
     assert abs(expected - 2 * math.sqrt(2) * 0.95) < 1e-3
@@ -53,7 +55,16 @@ def test_garbage_only_publisher_is_all_rejected(run_cli):
 
 def test_dropped_and_duplicated_messages_are_reported(run_cli):
     ep = f"tcp://127.0.0.1:{free_port()}"
-    sim = run_cli("simulate", ep, "--faults", "drop=0.1,duplicate=0.1,malformed=0.1", "--duration", "8", "--seed", "3")
+    sim = run_cli(
+        "simulate",
+        ep,
+        "--faults",
+        "drop=0.1,duplicate=0.1,malformed=0.1",
+        "--duration",
+        "8",
+        "--seed",
+        "3",
+    )
     res = watch_json(run_cli, ep, "--duration", "3", "--no-lp")
     sim.kill()
     assert res["gaps"] > 0 and res["missing"] > 0
@@ -72,7 +83,26 @@ def test_bad_endpoint_fails_clearly(run_cli, bad):
 
 def test_qudit_stream_with_random_frames_is_accepted(run_cli):
     ep = f"tcp://127.0.0.1:{free_port()}"
-    sim = run_cli("simulate", ep, "--source", "qudit", "--dim", "3", "--bases", "3", "--frames", "random", "--settings", "random", "--rate", "20000", "--duration", "8", "--seed", "5")
+    sim = run_cli(
+        "simulate",
+        ep,
+        "--source",
+        "qudit",
+        "--dim",
+        "3",
+        "--bases",
+        "3",
+        "--frames",
+        "random",
+        "--settings",
+        "random",
+        "--rate",
+        "20000",
+        "--duration",
+        "8",
+        "--seed",
+        "5",
+    )
     res = watch_json(run_cli, ep, "--duration", "4")
     sim.kill()
     assert res["scenario"] == {"settings": [3, 3], "outcomes": [3, 3]}
@@ -88,11 +118,26 @@ def test_qudit_stream_with_random_frames_is_accepted(run_cli):
 
 def test_local_source_stays_at_the_bound(run_cli):
     ep = f"tcp://127.0.0.1:{free_port()}"
-    sim = run_cli("simulate", ep, "--source", "local", "--rate", "5000", "--settings", "random", "--duration", "8", "--seed", "2")
+    sim = run_cli(
+        "simulate",
+        ep,
+        "--source",
+        "local",
+        "--rate",
+        "5000",
+        "--settings",
+        "random",
+        "--duration",
+        "8",
+        "--seed",
+        "2",
+    )
     res = watch_json(run_cli, ep, "--duration", "4")
     sim.kill()
     value, err = res["chsh"]["value"], res["chsh"]["stderr"]
-    assert abs(value - 2.0) < 4 * err  # a mixture of deterministic strategies at the bound: E[S] = 2
+    assert (
+        abs(value - 2.0) < 4 * err
+    )  # a mixture of deterministic strategies at the bound: E[S] = 2
     assert res["figures"]["p_value"]["value"] > 0.01  # no evidence against local realism
     assert "stopping-safe" in res["figures"]["p_value"]["assumptions"]
 
@@ -109,8 +154,23 @@ def test_block_settings_say_they_cannot_test_local_realism(run_cli):
 def test_random_setting_run_stops_itself_at_the_target(run_cli):
     port = free_port()
     ep, ctl = f"tcp://127.0.0.1:{port}", f"tcp://127.0.0.1:{free_port()}"
-    sim = run_cli("simulate", ep, "--control", ctl, "--settings", "random", "--visibility", "0.9", "--duration", "120", "--seed", "4")
-    res = watch_json(run_cli, ep, "--duration", "60", "--target", "p<=1e-6", "--stop-source", "--control", ctl)
+    sim = run_cli(
+        "simulate",
+        ep,
+        "--control",
+        ctl,
+        "--settings",
+        "random",
+        "--visibility",
+        "0.9",
+        "--duration",
+        "120",
+        "--seed",
+        "4",
+    )
+    res = watch_json(
+        run_cli, ep, "--duration", "60", "--target", "p<=1e-6", "--stop-source", "--control", ctl
+    )
     sim_out, sim_err = sim.communicate(timeout=30)  # the source stops by command, long before 120 s
     assert sim.returncode == 0 and "stopped by command" in sim_err
     assert res["target_met"] is True

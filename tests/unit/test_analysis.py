@@ -8,7 +8,6 @@ import numpy as np
 import pytest
 
 from labwatch.analysis import AnalysisConfig, correlation_contrast, correlators
-from labwatch.bell import chsh
 from labwatch.engine import EngineConfig, MonitorEngine
 from labwatch.models import chsh_bases, maximally_entangled, probabilities, with_white_noise
 from labwatch.polytope import white_noise_visibility
@@ -33,7 +32,17 @@ def event_stream(p: np.ndarray, n_msgs: int, per_msg: int, seed: int, no_click: 
             sel = xy == i
             ab[sel] = rng.choice(4, size=sel.sum(), p=flat[i])
         ev = np.stack([xy // 2, xy % 2, ab // 2, ab % 2], axis=1)
-        yield encode_events(source="s", run="r", seq=k, t_start=0.1 * k, t_stop=0.1 * (k + 1), events=ev, scenario=SC, setting_probabilities=np.full((2, 2), 0.25), no_click=no_click)
+        yield encode_events(
+            source="s",
+            run="r",
+            seq=k,
+            t_start=0.1 * k,
+            t_stop=0.1 * (k + 1),
+            events=ev,
+            scenario=SC,
+            setting_probabilities=np.full((2, 2), 0.25),
+            no_click=no_click,
+        )
 
 
 def run(frames, **cfg) -> MonitorEngine:
@@ -76,7 +85,18 @@ def test_block_stream_has_no_local_realism_test():
     frames = []
     for k in range(80):
         x, y = divmod((k // 5) % 4, 2)
-        frames.append(encode_histogram(source="s", run="r", seq=k, t_start=0.1 * k, t_stop=0.1 * (k + 1), counts=rng.multinomial(300, p[x, y].ravel()).reshape(2, 2), scenario=SC, pair=(x, y)))
+        frames.append(
+            encode_histogram(
+                source="s",
+                run="r",
+                seq=k,
+                t_start=0.1 * k,
+                t_stop=0.1 * (k + 1),
+                counts=rng.multinomial(300, p[x, y].ravel()).reshape(2, 2),
+                scenario=SC,
+                pair=(x, y),
+            )
+        )
     e = run(frames, target="p<=1e-6")
     s = e.latest
     assert s.figure("p_value") is None

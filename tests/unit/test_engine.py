@@ -17,7 +17,16 @@ SC = Scenario(2, 2, 2, 2)
 
 def msg(seq, run="r1", t=None, pair=(0, 0), counts=((5, 1), (1, 5)), source="bench"):
     t = seq * 0.1 if t is None else t
-    return encode_histogram(source=source, run=run, seq=seq, t_start=t, t_stop=t + 0.1, counts=np.array(counts), scenario=SC, pair=pair)
+    return encode_histogram(
+        source=source,
+        run=run,
+        seq=seq,
+        t_start=t,
+        t_stop=t + 0.1,
+        counts=np.array(counts),
+        scenario=SC,
+        pair=pair,
+    )
 
 
 def engine(**kw) -> MonitorEngine:

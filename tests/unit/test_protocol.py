@@ -24,7 +24,16 @@ SC = Scenario(2, 2, 2, 2)
 
 
 def hist(**kw) -> list[bytes]:
-    args = dict(source="bench", run="r1", seq=3, t_start=1.0, t_stop=1.1, counts=np.arange(4).reshape(2, 2), scenario=SC, pair=(1, 0))
+    args = dict(
+        source="bench",
+        run="r1",
+        seq=3,
+        t_start=1.0,
+        t_stop=1.1,
+        counts=np.arange(4).reshape(2, 2),
+        scenario=SC,
+        pair=(1, 0),
+    )
     args.update(kw)
     return encode_histogram(**args)
 
@@ -39,7 +48,8 @@ def with_header(frames: list[bytes], **changes) -> list[bytes]:
     return [frames[0], json.dumps(h).encode(), frames[2]]
 
 
-def reason(frames, limits=Limits()) -> str:
+def reason(frames, limits: Limits | None = None) -> str:
+    limits = limits or Limits()
     with pytest.raises(MessageRejected) as info:
         parse_message(frames, limits)
     assert info.value.reason in REJECTION_REASONS
@@ -59,7 +69,18 @@ def test_histogram_pair_round_trip():
 
 def test_histogram_all_and_singles_round_trip():
     counts = np.arange(16).reshape(2, 2, 2, 2)
-    f = encode_histogram(source="s", run="r", seq=0, t_start=0, t_stop=1, counts=counts, scenario=SC, singles=([10, 11], [12, 13]), coincidence_window_s=2e-9, dtype="<u8")
+    f = encode_histogram(
+        source="s",
+        run="r",
+        seq=0,
+        t_start=0,
+        t_stop=1,
+        counts=counts,
+        scenario=SC,
+        singles=([10, 11], [12, 13]),
+        coincidence_window_s=2e-9,
+        dtype="<u8",
+    )
     b = parse_message(f)
     assert np.array_equal(b.counts, counts)
     assert b.singles == ((10, 11), (12, 13))
@@ -69,7 +90,18 @@ def test_histogram_all_and_singles_round_trip():
 def test_events_are_binned():
     ev = np.array([[0, 1, 1, 0], [0, 1, 1, 0], [1, 1, 0, 1]])
     q = np.full((2, 2), 0.25)
-    b = parse_message(encode_events(source="s", run="r", seq=0, t_start=0, t_stop=1, events=ev, scenario=SC, setting_probabilities=q))
+    b = parse_message(
+        encode_events(
+            source="s",
+            run="r",
+            seq=0,
+            t_start=0,
+            t_stop=1,
+            events=ev,
+            scenario=SC,
+            setting_probabilities=q,
+        )
+    )
     assert b.random_settings and b.trials == 3
     assert b.counts[0, 1, 1, 0] == 2 and b.counts[1, 1, 0, 1] == 1
     assert np.array_equal(b.events, ev)
@@ -117,8 +149,13 @@ def test_field_rejections():
     assert reason(with_header(good, kind="events")) == "header_field"
     assert reason(with_header(good, t_stop=0.5)) == "time_window"
     assert reason(with_header(good, scenario={"settings": [2], "outcomes": [2, 2]})) == "scenario"
-    assert reason(with_header(good, scenario={"settings": [2, 2], "outcomes": [1, 2]})) == "scenario"
-    assert reason(with_header(good, scenario={"settings": [32, 32], "outcomes": [64, 64]})) == "scenario"
+    assert (
+        reason(with_header(good, scenario={"settings": [2, 2], "outcomes": [1, 2]})) == "scenario"
+    )
+    assert (
+        reason(with_header(good, scenario={"settings": [32, 32], "outcomes": [64, 64]}))
+        == "scenario"
+    )
     assert reason(with_header(good, pair=[2, 0])) == "scenario"
     assert reason(with_header(good, layout="diagonal")) == "layout"
     assert reason(with_header(good, dtype=">f8")) == "dtype"
@@ -141,7 +178,9 @@ def test_event_rejections():
     ev = np.array([[0, 0, 0, 2]])
     f = encode_events(source="s", run="r", seq=0, t_start=0, t_stop=1, events=ev, scenario=SC)
     assert reason(f) == "event_range"
-    ok = encode_events(source="s", run="r", seq=0, t_start=0, t_stop=1, events=np.zeros((3, 4)), scenario=SC)
+    ok = encode_events(
+        source="s", run="r", seq=0, t_start=0, t_stop=1, events=np.zeros((3, 4)), scenario=SC
+    )
     assert reason(with_header(ok, n_events=4)) == "payload_length"
     assert reason(with_header(ok, n_events=10**9)) == "oversize"
     assert reason(with_header(ok, layout="pair")) == "layout"
