@@ -53,7 +53,7 @@ def _construct() -> highspy.Highs:
 
 
 def new_model() -> highspy.Highs:
-    """A HiGHS instance with logging silenced and deterministic single-thread settings."""
+    """A HiGHS instance with logging silenced (``output_flag`` and console log off)."""
     h = _construct()
     h.setOptionValue("output_flag", False)
     h.setOptionValue("log_to_console", False)
