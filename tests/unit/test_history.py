@@ -56,8 +56,10 @@ def test_series_values_from_engine_snapshot():
     assert v["bell_err"] == pytest.approx(snap.bell.stderr)
     assert v["trials"] == snap.trials == 40 * 200
     assert v["coincidence_hz"] == pytest.approx(snap.rates.coincidence_hz)
-    for absent in ("visibility", "neg_log10_p", "bell_lcb", "no_signalling_p", "singles_a_hz"):
+    for absent in ("visibility", "neg_log10_p", "no_signalling_p", "singles_a_hz"):
         assert math.isnan(v[absent]), absent
+    # the confidence-sequence bound (always computed for a fixed functional) lies below S
+    assert v["bell_lcb"] == pytest.approx(snap.figure("bell_lcb").value) and v["bell_lcb"] < 3.2
 
 
 def test_series_values_reads_figures_and_extras():

@@ -227,7 +227,10 @@ def test_dashboard_panels_from_a_random_setting_stream():
     m = d.margin_panel
     assert m.sigma == pytest.approx(snap.bell.margin_sigma) and m.random_settings
     assert m.warning.value == ""
-    assert "fixed n" in m.common.value and m.lcb_margin is None and DASH in m.safe.value
+    assert "fixed n" in m.common.value
+    lcb = snap.figure("bell_lcb")  # the confidence-sequence bound: shown as a margin over L
+    assert m.lcb_margin == pytest.approx(lcb.value - snap.bell.local_bound)
+    assert "stopping-safe" in m.safe.value
     a = d.alignment_panel
     np.testing.assert_allclose(a.contrast, snap.contrast.ravel())
     assert list(a.bars.x) == ["A0·B0", "A0·B1", "A1·B0", "A1·B1"]
