@@ -12,6 +12,7 @@ import json
 import os
 import resource
 import signal
+import socket
 import subprocess
 import threading
 import time
@@ -68,6 +69,20 @@ class _LineReader:
     def join(self, timeout: float = 10) -> str:
         self._thread.join(timeout)
         return "\n".join(line for _, line in self.lines)
+
+
+def _wait_listening(endpoint: str, timeout: float = 20.0) -> None:
+    """Wait until something accepts TCP connections on the endpoint's port (the source has
+    bound), so a subscriber connects at once instead of in libzmq's reconnect back-off."""
+    host, port = endpoint.removeprefix("tcp://").rsplit(":", 1)
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            socket.create_connection((host, int(port)), timeout=0.5).close()
+            return
+        except OSError:
+            time.sleep(0.05)
+    raise AssertionError(f"nothing listens on {endpoint}")
 
 
 def _engine() -> MonitorEngine:
@@ -253,11 +268,12 @@ def test_reordered_and_duplicated_messages_counted_once(run_cli):
     cumulative counts equal the sum over distinct sequence numbers exactly."""
     ep = _ep()
     engine = _engine()
+    run_cli(
+        "simulate", ep, "--speed", "20", "--duration", "30", "--seed", "7",
+        "--faults", "reorder=0.2,duplicate=0.2",
+    )  # fmt: skip
+    _wait_listening(ep)
     with Subscriber(ep) as sub:
-        run_cli(
-            "simulate", ep, "--speed", "20", "--duration", "30", "--seed", "7",
-            "--faults", "reorder=0.2,duplicate=0.2",
-        )  # fmt: skip
         seen = _drain_until_stopped(sub, engine, timeout=30)
     h = engine.health()
     data = _parsed_data(seen)
@@ -279,11 +295,12 @@ def test_source_clock_jumps_reset_the_window_and_keep_the_run(run_cli):
     engine = _engine()
     snaps = []
     engine.subscribe(snaps.append)
+    run_cli(
+        "simulate", ep, "--speed", "20", "--duration", "12", "--seed", "8",
+        "--faults", "jump=40:-10,jump=80:500",
+    )  # fmt: skip
+    _wait_listening(ep)  # the source sends 0.5 s after binding: we are subscribed by then
     with Subscriber(ep) as sub:
-        run_cli(
-            "simulate", ep, "--speed", "20", "--duration", "12", "--seed", "8",
-            "--faults", "jump=40:-10,jump=80:500",
-        )  # fmt: skip
         seen = _drain_until_stopped(sub, engine, timeout=30)
     data = {b.seq: b for b in _parsed_data(seen)}
     assert set(range(120)) <= set(data), "a message was lost on loopback at 200 msg/s"
