@@ -12,6 +12,7 @@ import sys
 from collections.abc import Sequence
 
 from labwatch import __version__
+from labwatch.cli_options import add_analysis_options, positive, unit
 from labwatch.transport import DEFAULT_ENDPOINT, EndpointError
 
 __all__ = ["main", "build_parser"]
@@ -22,24 +23,8 @@ SAFETY = (
 )
 
 
-def _positive(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-    if not v > 0 or not math.isfinite(v):
-        raise argparse.ArgumentTypeError(f"{text!r} must be a positive number")
-    return v
-
-
-def _unit(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-    if not 0.0 <= v <= 1.0:
-        raise argparse.ArgumentTypeError(f"{text!r} must be between 0 and 1")
-    return v
+_positive = positive
+_unit = unit
 
 
 def _add_simulate(sub: argparse._SubParsersAction) -> None:
@@ -164,35 +149,7 @@ def _add_watch(sub: argparse._SubParsersAction) -> None:
         action="store_true",
         help="print one JSON object with the final figures at the end (status lines go to stderr)",
     )
-    p.add_argument(
-        "--window",
-        type=_positive,
-        default=30.0,
-        help="rolling window, seconds of source time (default 30)",
-    )
-    p.add_argument(
-        "--epoch",
-        type=_positive,
-        default=1.0,
-        help="analysis interval, seconds of source time (default 1)",
-    )
-    p.add_argument(
-        "--functional",
-        default="auto",
-        help="auto, chsh, cglmp, certificate, or a .npy file with a coefficient tensor",
-    )
-    p.add_argument("--no-lp", action="store_true", help="skip the local-polytope LP (visibility)")
-    p.add_argument(
-        "--bootstrap",
-        type=int,
-        default=0,
-        help="bootstrap resamples for the visibility error (default 0: delta method)",
-    )
-    p.add_argument(
-        "--target",
-        default=None,
-        help="confidence target, e.g. 'p<=1e-6', 'lcb>local@0.01', 'v<1@0.01'",
-    )
+    add_analysis_options(p)
     p.add_argument(
         "--stop-source",
         action="store_true",

@@ -18,6 +18,7 @@ import sys
 from collections.abc import Callable
 from typing import Any
 
+from labwatch.cli_options import add_analysis_options  # noqa: F401
 from labwatch.engine import MonitorEngine
 from labwatch.replay import ProgressCallback, ReplayResult, replay_into
 from labwatch.snapshot import Snapshot, StreamHealth, to_jsonable
@@ -30,45 +31,6 @@ __all__ = [
     "progress_bar",
     "run_analyze",
 ]
-
-
-def _positive(text: str) -> float:
-    from labwatch.cli import _positive as positive
-
-    return positive(text)
-
-
-def add_analysis_options(p: argparse.ArgumentParser) -> None:
-    """The analysis options of ``watch`` (same names, defaults and meaning)."""
-    p.add_argument(
-        "--window",
-        type=_positive,
-        default=30.0,
-        help="rolling window, seconds of source time (default 30)",
-    )
-    p.add_argument(
-        "--epoch",
-        type=_positive,
-        default=1.0,
-        help="analysis interval, seconds of source time (default 1)",
-    )
-    p.add_argument(
-        "--functional",
-        default="auto",
-        help="auto, chsh, cglmp, certificate, or a .npy file with a coefficient tensor",
-    )
-    p.add_argument("--no-lp", action="store_true", help="skip the local-polytope LP (visibility)")
-    p.add_argument(
-        "--bootstrap",
-        type=int,
-        default=0,
-        help="bootstrap resamples for the visibility error (default 0: delta method)",
-    )
-    p.add_argument(
-        "--target",
-        default=None,
-        help="confidence target, e.g. 'p<=1e-6', 'lcb>local@0.01', 'v<1@0.01'",
-    )
 
 
 def analysis_options_dict(args: argparse.Namespace) -> dict[str, Any]:
