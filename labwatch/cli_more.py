@@ -4,7 +4,15 @@ from __future__ import annotations
 
 import argparse
 
-from labwatch import cli_analyze, cli_demo, cli_keys, cli_record, cli_replay, cli_report
+from labwatch import (
+    cli_analyze,
+    cli_demo,
+    cli_keys,
+    cli_record,
+    cli_replay,
+    cli_report,
+    cli_serve,
+)
 
 __all__ = ["add_commands", "dispatch"]
 
@@ -25,6 +33,8 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     _COMMANDS["report"] = cli_report.run_report
     cli_keys.add_keys(sub)
     _COMMANDS["keys"] = cli_keys.run_keys
+    cli_serve.add_serve(sub)
+    _COMMANDS["serve"] = cli_serve.run_serve
 
 
 def dispatch(args: argparse.Namespace) -> int:
