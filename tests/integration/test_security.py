@@ -212,3 +212,27 @@ def test_no_pickle_or_code_executing_deserialisation_in_the_package():
         for n, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
             if "np.load(" in line:
                 assert "allow_pickle=False" in line, f"{path}:{n}: {line.strip()}"
+
+
+def test_watch_stop_source_with_keys_end_to_end(run_cli, keys):
+    """`watch --target ... --stop-source` with CurveZMQ keys: the encrypted stream meets the
+    target and the stop command passes the authenticated control channel."""
+    port = free_port()
+    ep, ctl = f"tcp://127.0.0.1:{port}", f"tcp://127.0.0.1:{free_port()}"
+    sim = run_cli(
+        "simulate", ep, "--control", ctl, "--speed", "5", "--duration", "300",
+        "--server-key", str(keys["source_secret"]), "--allowed-keys", str(keys["allowed"]),
+    )  # fmt: skip
+    w = run_cli(
+        "watch", ep, "--json", "--duration", "40", "--no-lp", "--control", ctl,
+        "--target", "lcb>local@0.01", "--stop-source",
+        "--server-public-key", str(keys["source_public"]),
+        "--client-key", str(keys["monitor_secret"]),
+    )  # fmt: skip
+    out, err = w.communicate(timeout=60)
+    assert w.returncode == 0, err
+    res = json.loads(out)
+    assert res["target_met"] is True
+    assert res["stop_command"]["ok"] is True and res["stop_command"]["state"] == "stopping"
+    _, sim_err = sim.communicate(timeout=20)
+    assert sim.returncode == 0 and "stopped by command" in sim_err
