@@ -3,14 +3,20 @@
 from __future__ import annotations
 
 import argparse
+import json
+import os
 import shutil
 import signal
 import subprocess
 import sys
+import tempfile
 import time
+from importlib import resources
 from pathlib import Path
 
-__all__ = ["add_demo", "run_demo", "find_notebook"]
+from labwatch.cli_serve import SERVE_CONFIG_ENV, SERVE_NOTEBOOK
+
+__all__ = ["add_demo", "run_demo"]
 
 
 def add_demo(sub: argparse._SubParsersAction) -> None:
@@ -31,14 +37,6 @@ def add_demo(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "--lab-port", type=int, default=8888, help="JupyterLab port on 127.0.0.1 (default 8888)"
     )
-
-
-def find_notebook(name: str = "live_alignment.ipynb") -> Path:
-    """The demo notebook: in the source tree's notebooks/ or the current directory's."""
-    for base in (Path(__file__).resolve().parents[1] / "notebooks", Path.cwd() / "notebooks"):
-        if (base / name).is_file():
-            return base / name
-    raise FileNotFoundError(f"demo notebook {name} not found (run from the labwatch source tree)")
 
 
 def _stop(proc: subprocess.Popen) -> None:
@@ -64,6 +62,8 @@ def run_demo(args: argparse.Namespace) -> int:
         "--control",
         control,
         "--drift",
+        "--settings",
+        "random",
         "--seed",
         "7",
     ]
@@ -97,16 +97,36 @@ def run_demo(args: argparse.Namespace) -> int:
             if (Path(sys.executable).parent / "jupyter").exists()
             else "jupyter"
         )
-        nb = find_notebook()
+        # The dashboard notebook of `labwatch serve`, copied to a scratch folder and pointed at
+        # the simulator through the environment the Jupyter server hands to its kernels.
+        workdir = Path(tempfile.mkdtemp(prefix="labwatch-demo-"))
+        nb = workdir / "labwatch_demo.ipynb"
+        with resources.as_file(resources.files("labwatch") / "data" / SERVE_NOTEBOOK) as src:
+            shutil.copyfile(src, nb)
+        config = {
+            "endpoint": endpoint,
+            "control": control,
+            "allow_control": True,
+            "window_s": 30.0,
+            "epoch_s": 1.0,
+            "keys": None,
+        }
+        env = dict(os.environ, **{SERVE_CONFIG_ENV: json.dumps(config)})
+        print(
+            f"labwatch demo: JupyterLab on http://127.0.0.1:{args.lab_port}/ ({nb})",
+            file=sys.stderr,
+        )
         lab = subprocess.Popen(
             [
                 jupyter,
                 "lab",
-                str(nb),
+                nb.name,
                 "--ServerApp.ip=127.0.0.1",
                 f"--ServerApp.port={args.lab_port}",
+                *(["--allow-root"] if hasattr(os, "geteuid") and os.geteuid() == 0 else []),
             ],
-            cwd=nb.parent,
+            cwd=workdir,
+            env=env,
         )
         children.append(lab)
         while all(c.poll() is None for c in children):
