@@ -87,7 +87,7 @@ def test_oversize_messages_are_rejected_and_the_stream_survives():
         pub.close(0)
         ctx.term()
     h = engine.health()
-    assert engine.run.messages > first + 20
+    assert engine.run.messages >= first + 20
     assert h.gaps >= 1  # what was sent while the link was down is counted as missing
     assert h.rejected == 1
 
