@@ -213,11 +213,17 @@ class RunAccumulator:
         self._pend_live = 0.0
         self._pend_singles = [0, 0]
 
-    def add(self, batch: CountBatch) -> None:
-        """Fold one accepted batch into the run (the batch's scenario must match)."""
+    def add(self, batch: CountBatch, late: bool = False) -> None:
+        """Fold one accepted batch into the run (the batch's scenario must match).
+
+        ``late`` marks a message that arrived out of order (its sequence number filled a gap):
+        its older timestamps are expected and are not taken for a clock jump.
+        """
         prev = self._t_prev
         t_stop = batch.t_stop
-        if prev is not None and t_stop < prev - self._bin_width:
+        if late:
+            pass
+        elif prev is not None and t_stop < prev - self._bin_width:
             # source clock went backwards: keep cumulative counts, restart the window
             self.flush()
             self.clock_jumps_backward += 1
@@ -227,7 +233,8 @@ class RunAccumulator:
             self.flush()
             self.clock_jumps_forward += 1
             self._window.reset()
-        self._t_prev = t_stop
+        if not late:
+            self._t_prev = t_stop
         live = max(0.0, t_stop - batch.t_start)
         index = math.floor(t_stop / self._bin_width)
         if index != self._pend_index or len(self._pend) >= MAX_PENDING:
@@ -250,7 +257,7 @@ class RunAccumulator:
         self.no_click = self.no_click or batch.no_click
         if batch.random_settings:
             self.random_settings = True
-            if batch.setting_probabilities is not None:
+            if self.messages == 1 or self.setting_probabilities is None:
                 self.setting_probabilities = batch.setting_probabilities
         else:
             self.block_settings = True

@@ -15,7 +15,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from labwatch.accumulate import RunAccumulator
-from labwatch.bell import BellFunctional, BellValue, cglmp, chsh
+from labwatch.bell import BellFunctional, BellValue, cglmp, ch_eberhard, chsh
 from labwatch.polytope import (
     SolverError,
     VisibilitySolver,
@@ -39,7 +39,7 @@ __all__ = [
 ]
 
 #: Named functional choices accepted by :class:`AnalysisConfig` (or pass a BellFunctional).
-FUNCTIONAL_CHOICES = ("auto", "chsh", "cglmp", "certificate")
+FUNCTIONAL_CHOICES = ("auto", "chsh", "cglmp", "ch", "certificate")
 
 
 def default_functional(scenario: Scenario) -> BellFunctional | None:
@@ -184,9 +184,15 @@ class Analyzer:
         self._target = None if self.config.target is None else TargetWatch(self.config.target)
         self._visibility_fig: Figure | None = None
         self.epochs = 0
+        self._no_click_seen = False
+        self._untested_total = 0
 
-    def _resolve_functional(self) -> BellFunctional | None:
+    def _resolve_functional(self, no_click: bool = False) -> BellFunctional | None:
         f = self.config.functional
+        m_a, m_b, d_a, d_b = self.scenario.shape
+        if f == "ch" or (f == "auto" and no_click):
+            # the no-click outcome is the last one; "+" is outcome 0 (Clauser-Horne/Eberhard)
+            return ch_eberhard(d_a, d_b) if (m_a, m_b) == (2, 2) else None
         if isinstance(f, BellFunctional):
             return f if f.coefficients.shape == self.scenario.shape else None
         if f == "chsh":
@@ -204,9 +210,14 @@ class Analyzer:
         return self._functional
 
     def rates(self, acc: RunAccumulator) -> RateFigures:
-        """Coincidence and singles rates over the rolling window, heralding and accidentals."""
+        """Coincidence and singles rates over the rolling window, heralding and accidentals.
+
+        Coincidences exclude trials in which either party's no-click outcome occurred.
+        """
         live = acc.window.live_time_s
-        trials = int(acc.window.total.sum())
+        total = acc.window.total
+        # with a kept no-click outcome (the last one) a coincidence is a trial where both clicked
+        trials = int(total[:, :, :-1, :-1].sum() if acc.no_click else total.sum())
         if live <= 0:
             return RateFigures(math.nan, math.nan, None, None, None, None, None)
         rate = trials / live
@@ -367,6 +378,9 @@ class Analyzer:
             "functional": res.functional,
             "growth_per_trial": res.growth_per_trial,
             "realised_growth_per_trial": res.realised_growth_per_trial,
+            "factor_bound": res.factor_bound,
+            "untested_late_trials": self._untested_total,
+            "setting_probabilities_declared": declared,
         }
 
     def _sequence_bound(
@@ -383,8 +397,9 @@ class Analyzer:
         totals = acc.counts.sum(axis=(2, 3))
         if np.any(totals == 0):
             return
-        lo = self._sequence.lower_bound(alpha)
-        hi = self._sequence.upper_bound(alpha)
+        # a two-sided interval at the stated level: each side at alpha / 2
+        lo = self._sequence.lower_bound(alpha / 2)
+        hi = self._sequence.upper_bound(alpha / 2)
         figures.append(
             Figure(
                 "bell_lcb",
@@ -403,6 +418,8 @@ class Analyzer:
         )
 
     def _strength(self, acc: RunAccumulator, extras: dict[str, Any]) -> None:
+        if acc.block_settings or not acc.random_settings:
+            return  # no test of local realism is possible, so no evidence rate to quote
         totals = acc.counts.sum(axis=(2, 3))
         if np.any(totals == 0) or acc.scenario.local_vertices > 10**7:
             return
@@ -469,7 +486,8 @@ class Analyzer:
             "time": (acc.t_last or 0.0) - (acc.t_first or 0.0),
             "trials": acc.trials,
         }
-        if "p_value" in by_name:
+        declared = acc.setting_probabilities is not None
+        if "p_value" in by_name and declared:
             figs["p_value"] = by_name["p_value"].value
         if seq is not None and "bell_lcb" in by_name:
             figs["bell_lcb"] = seq.lower_bound
@@ -488,15 +506,44 @@ class Analyzer:
             "reason": d.reason,
             "assumptions": list(_TARGET_ASSUMPTIONS[self._target.target.kind]),
         }
+        random_stream = acc.random_settings and not acc.block_settings
+        if self._target.target.kind == "p_value" and random_stream and not declared and not d.met:
+            extras["target"]["reason"] = (
+                "the stream does not declare its setting probabilities: a p-value target "
+                "does not fire on assumed ones"
+            )
 
-    def analyze(self, acc: RunAccumulator, epoch_counts: NDArray[np.int64]) -> EpochFigures:
-        """Figures for the run so far; ``epoch_counts`` are the counts added since last epoch."""
+    def analyze(
+        self,
+        acc: RunAccumulator,
+        epoch_counts: NDArray[np.int64],
+        untested: NDArray[np.int64] | None = None,
+    ) -> EpochFigures:
+        """Figures for the run so far.
+
+        ``epoch_counts`` are the counts added since the last epoch; ``untested`` the part of
+        them that arrived out of order and is left out of the stopping-safe test.
+        """
         figures: list[Figure] = []
         extras: dict[str, Any] = {}
+        if acc.no_click and not self._no_click_seen:
+            self._no_click_seen = True
+            self._fixed = self._resolve_functional(no_click=True)
+        if self._fixed is None and self.config.functional not in ("auto", "certificate"):
+            extras["functional_note"] = (
+                f"the requested functional does not fit the scenario {acc.scenario.shape}; "
+                "showing the LP certificate instead"
+            )
         # a data-chosen functional comes from an earlier epoch's LP (see class docstring)
         f = self._fixed if self._fixed is not None else self._certificate
         self._functional = f
-        self._evidence(acc, epoch_counts, f, figures, extras)
+        tested = epoch_counts if untested is None else epoch_counts - untested
+        if untested is not None:
+            self._untested_total += int(untested.sum())
+        try:
+            self._evidence(acc, tested, f, figures, extras)
+        except ValueError as exc:  # e.g. a functional that no local or quantum data can violate
+            extras["evidence_note"] = f"no stopping-safe test: {exc}"[:300]
         self._visibility_fig = None
         self._visibility(acc, figures, extras)
         self._sequence_bound(acc, epoch_counts, figures)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import math
 
-__all__ = ["positive", "unit", "add_analysis_options"]
+__all__ = ["positive", "unit", "nonnegative_int", "add_analysis_options"]
 
 
 def positive(text: str) -> float:
@@ -25,6 +25,17 @@ def unit(text: str) -> float:
         raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
     if not 0.0 <= v <= 1.0:
         raise argparse.ArgumentTypeError(f"{text!r} must be between 0 and 1")
+    return v
+
+
+def nonnegative_int(text: str) -> int:
+    """An integer >= 0 (argparse type)."""
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be 0 or more")
     return v
 
 
@@ -50,7 +61,7 @@ def add_analysis_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--no-lp", action="store_true", help="skip the local-polytope LP (visibility)")
     p.add_argument(
         "--bootstrap",
-        type=int,
+        type=nonnegative_int,
         default=0,
         help="bootstrap resamples for the visibility error (default 0: delta method)",
     )

@@ -58,6 +58,18 @@ def run_watch(args: argparse.Namespace) -> int:
     started = time.time()
     silence_after = getattr(args, "silence", DEFAULT_SILENCE_S)
     stopper = None
+    if args.stop_source and args.target and "v" in args.target.split("<")[0]:
+        print(
+            "labwatch watch: warning: the visibility target uses a fixed-n (Gaussian) bound; "
+            "checking it at every epoch and stopping on it is not stopping-safe",
+            file=sys.stderr,
+        )
+    if not args.quiet:
+        print(
+            "labwatch watch: reads counts only; it never replaces an interlock. Follow your "
+            "lab's laser and detector safety rules.",
+            file=sys.stderr,
+        )
     if args.stop_source:
         from labwatch.control import StopOnTarget
 
@@ -126,7 +138,10 @@ def run_watch(args: argparse.Namespace) -> int:
 
 
 def _control_default(endpoint: str) -> str:
+    """The convention: the control socket is on the data port + 1 (tcp endpoints only)."""
     head, _, port = endpoint.rpartition(":")
+    if not endpoint.startswith("tcp://") or not port.isdigit():
+        raise ValueError(f"give --control explicitly for the non-tcp endpoint {endpoint!r}")
     return f"{head}:{int(port) + 1}"
 
 

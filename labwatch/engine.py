@@ -131,6 +131,9 @@ class MonitorEngine:
         self.closed_clock_jumps = 0
         # run counts at the last epoch close: an epoch's counts are run.counts minus this
         self._epoch_base: np.ndarray | None = None
+        self._untested: np.ndarray | None = None
+        self.analysis_errors = 0
+        self.last_analysis_error: str | None = None
         self._next_epoch_t = math.inf
 
     # ------------------------------------------------------------------ subscriptions
@@ -198,6 +201,22 @@ class MonitorEngine:
                 f"run {batch.run!r} declared {self.run.scenario.shape}, message has {batch.scenario.shape}",
                 wall,
             )
+        if (
+            batch.random_settings
+            and self.run is not None
+            and known_run == batch.run
+            and self.run.random_settings
+        ):
+            q_run, q_new = self.run.setting_probabilities, batch.setting_probabilities
+            if (q_run is None) != (q_new is None) or (
+                q_run is not None and q_new is not None and not np.array_equal(q_run, q_new)
+            ):
+                # the stopping-safe test relies on one known q per run: a change needs a new run
+                return self._reject(
+                    "settings_change",
+                    f"run {batch.run!r} changed its declared setting probabilities",
+                    wall,
+                )
         verdict = self.tracker.check(batch.source, batch.run, batch.seq)
         if verdict == "duplicate":
             return self._reject(
@@ -211,7 +230,12 @@ class MonitorEngine:
             self._start_run(batch.source, batch.run, batch.scenario, batch.t_start)
         assert self.run is not None and self._epoch_base is not None
         jumps = self.run.clock_jumps
-        self.run.add(batch)
+        late = verdict == "late"
+        self.run.add(batch, late=late)
+        if late and self._untested is not None:
+            # trials that arrive after later ones were already tested are left out of the
+            # stopping-safe test (its bets must depend on earlier trials only)
+            self._untested += batch.counts
         self.accepted += 1
         self.last_data_wall = wall
         if self.run.clock_jumps != jumps:
@@ -237,6 +261,7 @@ class MonitorEngine:
         self.runs_seen += 1
         self.analyzer = Analyzer(scenario, self.config.analysis)
         self._epoch_base = np.zeros(scenario.shape, dtype=np.int64)
+        self._untested = np.zeros(scenario.shape, dtype=np.int64)
         self._epoch_origin = t0
         self._next_epoch_t = t0 + self.config.epoch_s
 
@@ -310,7 +335,25 @@ class MonitorEngine:
             and self.latest.run_index == run.index
         ):
             return ()
-        figs = analyzer.analyze(run, epoch_counts)
+        untested = self._untested
+        try:
+            figs = analyzer.analyze(run, epoch_counts, untested=untested)
+        except Exception as exc:  # noqa: BLE001 - an analysis bug must not stop the monitor
+            self.analysis_errors += 1
+            self.last_analysis_error = f"{type(exc).__name__}: {exc}"[:300]
+            self._epoch_base = counts
+            return ()
+        if untested is not None:
+            untested[:] = 0
+        evidence = figs.extras.get("evidence")
+        if isinstance(evidence, dict):
+            c = self.tracker.counters
+            evidence["messages_lost"] = c.missing
+            if c.missing:
+                evidence["lost_note"] = (
+                    f"{c.missing} messages lost: the p-value covers the trials received and "
+                    "stays valid only if losses do not depend on the outcomes"
+                )
         counts.setflags(write=False)
         window = run.window.total.copy()
         window.setflags(write=False)

@@ -73,6 +73,8 @@ REJECTION_REASONS = (
     "duplicate",
     "stale_run",
     "scenario_change",
+    "settings_change",
+    "analysis_error",
 )
 
 #: Largest count accepted in one cell of one message (2**40 ~ 1.1e12, far above any counter).

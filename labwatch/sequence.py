@@ -69,7 +69,7 @@ class SequenceTracker:
         self.reorder_window = int(reorder_window)
         self.counters = SequenceCounters()
         self._runs: dict[str, _RunState] = {}
-        self._old_runs: dict[str, set[str]] = {}
+        self._old_runs: dict[str, dict[str, None]] = {}
 
     def current_run(self, source: str) -> str | None:
         """The run id currently tracked for ``source``."""
@@ -82,12 +82,12 @@ class SequenceTracker:
         state = self._runs.get(source)
         if state is None or state.run != run:
             if state is not None:
-                old = self._old_runs.setdefault(source, set())
+                old = self._old_runs.setdefault(source, {})
                 if run in old:
                     return "stale_run"
-                old.add(state.run)
+                old[state.run] = None  # insertion-ordered: forget the oldest (replay = live)
                 if len(old) > 64:
-                    old.pop()
+                    del old[next(iter(old))]
                 c.restarts += 1
                 c.missing -= len(state.missing)  # holes of the old run: now written off
             self._runs[source] = _RunState(run=run, expected=seq + 1, start=seq)

@@ -150,7 +150,7 @@ def status_line(
         b = snapshot.bell
         head.append(
             f"{snapshot.functional} {_num(b.value)} ± {_num(b.stderr)}"
-            f" ({_num(b.margin_sigma, '.1f')} σ over {b.local_bound:g}; fixed n, i.i.d.)"
+            f" ({_num(b.margin_sigma, '.1f')} σ over {b.local_bound:g}; fixed n, Gaussian, i.i.d.)"
         )
     for f in snapshot.figures:
         if f.name == "visibility":

@@ -131,3 +131,94 @@ def test_correlators_and_contrast_by_hand():
     e, err = correlators(counts)
     assert np.allclose(e, 0.6) and np.allclose(err, math.sqrt((1 - 0.36) / 100))
     assert np.allclose(correlation_contrast(counts), 0.6)  # (0.8 - 1/2)/(1/2)
+
+
+def test_no_click_stream_uses_ch_and_counts_only_double_clicks():
+    sc = Scenario(2, 2, 3, 3)  # outcomes +, -, no-click (last)
+    rng = np.random.default_rng(6)
+    p = rng.dirichlet(np.ones(9), size=(2, 2)).reshape(2, 2, 3, 3)
+    frames = []
+    for k in range(30):
+        ev = []
+        for x in range(2):
+            for y in range(2):
+                cells = rng.choice(9, size=50, p=p[x, y].ravel())
+                ev += [[x, y, c // 3, c % 3] for c in cells]
+        frames.append(
+            encode_events(
+                source="s",
+                run="r",
+                seq=k,
+                t_start=0.1 * k,
+                t_stop=0.1 * (k + 1),
+                events=np.array(ev),
+                scenario=sc,
+                setting_probabilities=np.full((2, 2), 0.25),
+                no_click=True,
+            )
+        )
+    e = run(frames)
+    s = e.latest
+    assert s.functional == "CH" and s.bell.local_bound == pytest.approx(0.0)
+    both_clicked = s.window_counts[:, :, :2, :2].sum()
+    # the whole 3 s run lies inside the 30 s window: rate = double clicks / live time
+    assert s.rates.coincidence_hz == pytest.approx(both_clicked / s.live_time_s)
+    assert s.rates.coincidence_hz < s.window_trials / s.live_time_s
+
+
+def test_a_change_of_setting_probabilities_within_a_run_is_rejected():
+    ev = np.array([[0, 0, 0, 0], [1, 1, 1, 0]])
+    q1, q2 = np.full((2, 2), 0.25), np.array([[0.4, 0.1], [0.1, 0.4]])
+    e = MonitorEngine(EngineConfig(analysis=AnalysisConfig(visibility=False)))
+
+    def mk(k, q):
+        return encode_events(
+            source="s",
+            run="r",
+            seq=k,
+            t_start=k,
+            t_stop=k + 1,
+            events=ev,
+            scenario=SC,
+            setting_probabilities=q,
+        )
+
+    assert e.ingest(mk(0, q1)).accepted
+    r = e.ingest(mk(1, q2))
+    assert not r.accepted and r.reason == "settings_change"
+    assert e.ingest(mk(2, q1)).accepted
+
+
+def test_late_messages_are_kept_out_of_the_stopping_safe_test():
+    frames = list(event_stream(werner_p(0.95), 30, 300, seed=7))
+    frames[10], frames[11] = frames[11], frames[10]  # message 10 arrives late
+    e = run(frames)
+    ev = e.latest.extras["evidence"]
+    assert ev["untested_late_trials"] == 300
+    assert ev["trials"] == e.latest.trials - 300  # every other trial is tested once
+    assert ev["factor_bound"] <= 1 + 1e-9  # sum_xy q F <= 1 over all deterministic strategies
+
+
+def test_an_unviolable_custom_functional_does_not_stop_the_monitor():
+    from labwatch.bell import BellFunctional
+
+    ones = BellFunctional(np.ones((2, 2, 2, 2)), name="sum")  # equals 4 for every point
+    e = run(event_stream(werner_p(0.9), 20, 200, seed=8), functional=ones)
+    s = e.latest
+    assert s.functional == "sum" and s.bell.value == pytest.approx(4.0)
+    assert "no stopping-safe test" in s.extras["evidence_note"]
+
+
+def test_p_value_target_does_not_fire_on_assumed_setting_probabilities():
+    frames = []
+    for f in event_stream(werner_p(0.95), 30, 500, seed=9):
+        import json
+
+        h = json.loads(f[1])
+        h.pop("setting_probabilities")
+        frames.append([f[0], json.dumps(h).encode(), f[2]])
+    e = run(frames, target="p<=1e-6")
+    s = e.latest
+    assert s.figure("p_value").value < 1e-6
+    assert "setting probabilities assumed uniform" in s.figure("p_value").assumptions
+    assert not s.extras["target"]["met"] and "declare" in s.extras["target"]["reason"]
