@@ -112,6 +112,20 @@ class QuantumSource(ProbabilitySource):
         )
 
 
+def _same_detectors(
+    efficiency: float, dark_rate_hz: float, window_s: float, pair_rate_hz: float
+) -> DetectorModel:
+    """Both parties with identical detectors (efficiency, dark counts in Hz, window in s)."""
+    return DetectorModel(
+        efficiency_a=efficiency,
+        efficiency_b=efficiency,
+        dark_rate_a_hz=dark_rate_hz,
+        dark_rate_b_hz=dark_rate_hz,
+        window_s=window_s,
+        pair_rate_hz=pair_rate_hz,
+    )
+
+
 def polarization_source(
     visibility: float = 0.98,
     misalignment_deg: float = 0.0,
@@ -153,14 +167,7 @@ def polarization_source(
     bases_a = np.stack([polarization_analyzer_basis(a) for a in (a0, a1)])
     bases_b = np.stack([polarization_analyzer_basis(b + misalignment_deg) for b in (b0, b1)])
     rho = with_white_noise(maximally_entangled(2), visibility)
-    det = DetectorModel(
-        efficiency_a=efficiency,
-        efficiency_b=efficiency,
-        dark_rate_a_hz=dark_rate_hz,
-        dark_rate_b_hz=dark_rate_hz,
-        window_s=window_s,
-        pair_rate_hz=pair_rate_hz,
-    )
+    det = _same_detectors(efficiency, dark_rate_hz, window_s, pair_rate_hz)
     return QuantumSource(rho, bases_a, bases_b, detector=det, keep_no_click=keep_no_click)
 
 
@@ -213,12 +220,5 @@ def qudit_source(
         bases_a = rotate(bases_a, v_a)
         bases_b = rotate(bases_b, v_b)
     rho = with_white_noise(maximally_entangled(d), visibility)
-    det = DetectorModel(
-        efficiency_a=efficiency,
-        efficiency_b=efficiency,
-        dark_rate_a_hz=dark_rate_hz,
-        dark_rate_b_hz=dark_rate_hz,
-        window_s=window_s,
-        pair_rate_hz=pair_rate_hz,
-    )
+    det = _same_detectors(efficiency, dark_rate_hz, window_s, pair_rate_hz)
     return QuantumSource(rho, bases_a, bases_b, detector=det, keep_no_click=keep_no_click)
