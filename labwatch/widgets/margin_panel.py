@@ -41,8 +41,8 @@ class MarginPanel(Panel):
 
     def __init__(self, **kwargs) -> None:
         super().__init__(**kwargs)
-        self.common = Readout(caption="common practice: (S − L)/σ", size="huge")
-        self.safe = Readout(caption="stopping-safe: lower bound − L", size="huge")
+        self.common = Readout(caption="common practice: (S − L)/σ", size="large")
+        self.safe = Readout(caption="stopping-safe: lower bound − L", size="large")
         self.p_readout = Readout(caption="stopping-safe p against local realism", size="medium")
         self.warning = w.HTML()
         self.set_body(self.warning, w.HBox([self.common, self.safe]), self.p_readout)
