@@ -504,9 +504,21 @@ def _fast_hist(
         x, y = pair
         if type(x) is not int or type(y) is not int or not (0 <= x < m_a and 0 <= y < m_b):
             return None
-        block, trials = _counts_array(payload, dtype, d_a * d_b)
+        n_cells = d_a * d_b
+        dt = _DTYPES[dtype]
         counts = np.zeros(key, dtype=np.int64)
-        counts[x, y] = block.reshape(d_a, d_b)
+        if 0 < n_cells <= _SMALL_PAYLOAD_CELLS and len(payload) == n_cells * dt.itemsize:
+            # the common small block: checked on its values and cast into place by the
+            # assignment (no int64 copy of the block); bad values go to the full path
+            raw = np.frombuffer(payload, dtype=dt)
+            values = raw.tolist()
+            if min(values) < 0 or max(values) > MAX_CELL_COUNT:
+                return None
+            counts[x, y] = raw.reshape(d_a, d_b)
+            trials = sum(values)
+        else:
+            block, trials = _counts_array(payload, dtype, n_cells)
+            counts[x, y] = block.reshape(d_a, d_b)
     elif layout == "all":
         flat, trials = _counts_array(payload, dtype, m_a * m_b * d_a * d_b)
         counts = flat.reshape(key)
