@@ -12,6 +12,7 @@ import re
 import time
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import zmq
 import zmq.asyncio
@@ -218,7 +219,55 @@ def _configure(
     return monitor
 
 
-class Subscriber:
+class _MonitoredSub:
+    """What both subscribers share: a SUB socket, its socket monitor and the link state."""
+
+    def _open(
+        self,
+        endpoint: str,
+        topics: Sequence[bytes],
+        options: SocketOptions | None,
+        curve: object | None,
+        context: zmq.Context,
+        own_context: bool,
+        poller: Any,
+    ) -> None:
+        self.endpoint = endpoint
+        self._own_context = own_context
+        self.context = context
+        self.socket = context.socket(zmq.SUB)
+        try:
+            self._monitor = _configure(
+                self.socket, endpoint, topics, options or SocketOptions(), curve
+            )
+        except Exception:
+            self.socket.close(0)
+            if own_context:
+                context.term()
+            raise
+        self._link = _LinkWatch(self.socket, endpoint)
+        self._poller = poller
+        self._poller.register(self.socket, zmq.POLLIN)
+        self._poller.register(self._monitor, zmq.POLLIN)
+
+    @property
+    def link(self) -> LinkState:
+        """Connection state seen by the socket monitor."""
+        return self._link.state
+
+    def close(self) -> None:
+        """Close the socket (and the context when this subscriber made it)."""
+        try:
+            self.socket.disable_monitor()
+        except zmq.ZMQError:
+            pass
+        self._monitor.close(0)
+        self.socket.close(0)
+        if self._own_context:
+            self.context.term()
+
+
+class Subscriber(_MonitoredSub):
     """Blocking SUB socket for the command line and threads.
 
     Parameters
@@ -247,28 +296,15 @@ class Subscriber:
         curve: object | None = None,
         context: zmq.Context | None = None,
     ) -> None:
-        self.endpoint = endpoint
-        self._own_context = context is None
-        self.context = context or zmq.Context()
-        self.socket = self.context.socket(zmq.SUB)
-        try:
-            self._monitor = _configure(
-                self.socket, endpoint, topics, options or SocketOptions(), curve
-            )
-        except Exception:
-            self.socket.close(0)
-            if self._own_context:
-                self.context.term()
-            raise
-        self._link = _LinkWatch(self.socket, endpoint)
-        self._poller = zmq.Poller()
-        self._poller.register(self.socket, zmq.POLLIN)
-        self._poller.register(self._monitor, zmq.POLLIN)
-
-    @property
-    def link(self) -> LinkState:
-        """Connection state seen by the socket monitor."""
-        return self._link.state
+        self._open(
+            endpoint,
+            topics,
+            options,
+            curve,
+            context or zmq.Context(),
+            context is None,
+            zmq.Poller(),
+        )
 
     def _service_monitor(self) -> None:
         while self._monitor.poll(0):
@@ -297,17 +333,6 @@ class Subscriber:
                 break
         return out
 
-    def close(self) -> None:
-        """Close the socket (and the context when we own it)."""
-        try:
-            self.socket.disable_monitor()
-        except zmq.ZMQError:
-            pass
-        self._monitor.close(0)
-        self.socket.close(0)
-        if self._own_context:
-            self.context.term()
-
     def __enter__(self) -> Subscriber:
         return self
 
@@ -315,7 +340,7 @@ class Subscriber:
         self.close()
 
 
-class AsyncSubscriber:
+class AsyncSubscriber(_MonitoredSub):
     """SUB socket for an asyncio loop (the Jupyter kernel's), on its own asyncio context.
 
     Use :meth:`recv_batch` from a task created on the running loop; it waits for one message
@@ -330,26 +355,9 @@ class AsyncSubscriber:
         options: SocketOptions | None = None,
         curve: object | None = None,
     ) -> None:
-        self.endpoint = endpoint
-        self.context = zmq.asyncio.Context()
-        self.socket = self.context.socket(zmq.SUB)
-        try:
-            self._monitor = _configure(
-                self.socket, endpoint, topics, options or SocketOptions(), curve
-            )
-        except Exception:
-            self.socket.close(0)
-            self.context.term()
-            raise
-        self._link = _LinkWatch(self.socket, endpoint)
-        self._poller = zmq.asyncio.Poller()
-        self._poller.register(self.socket, zmq.POLLIN)
-        self._poller.register(self._monitor, zmq.POLLIN)
-
-    @property
-    def link(self) -> LinkState:
-        """Connection state seen by the socket monitor."""
-        return self._link.state
+        self._open(
+            endpoint, topics, options, curve, zmq.asyncio.Context(), True, zmq.asyncio.Poller()
+        )
 
     async def _service_monitor(self) -> None:
         while await self._monitor.poll(0):
@@ -374,13 +382,3 @@ class AsyncSubscriber:
         while len(out) < max_messages and (self.socket.getsockopt(zmq.EVENTS) & zmq.POLLIN):
             out.append(await self.socket.recv_multipart())
         return out
-
-    def close(self) -> None:
-        """Close the socket and its context."""
-        try:
-            self.socket.disable_monitor()
-        except zmq.ZMQError:
-            pass
-        self._monitor.close(0)
-        self.socket.close(0)
-        self.context.term()

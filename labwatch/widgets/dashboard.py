@@ -12,9 +12,8 @@ from __future__ import annotations
 import asyncio
 import functools
 import math
-import os
 import time
-from collections.abc import Iterable, Mapping
+from collections.abc import Mapping
 from dataclasses import replace
 from typing import Any
 
@@ -24,8 +23,7 @@ from traitlets import Bool, Dict, Float, TraitError, Unicode, observe, validate
 from labwatch.analysis import AnalysisConfig
 from labwatch.bell import BellFunctional
 from labwatch.control import send_command
-from labwatch.engine import EngineConfig, IngestResult
-from labwatch.snapshot import Snapshot
+from labwatch.engine import EngineConfig
 from labwatch.transport import check_endpoint
 from labwatch.widgets._format import esc, fmt, fmt_count
 from labwatch.widgets.alignment_panel import AlignmentPanel
@@ -34,6 +32,7 @@ from labwatch.widgets.bell_panel import BellPanel
 from labwatch.widgets.controls import FUNCTIONAL_LABELS, ControlBar
 from labwatch.widgets.evidence_panel import EvidencePanel
 from labwatch.widgets.feed import MonitorFeed
+from labwatch.widgets.feedview import FeedView
 from labwatch.widgets.health_panel import HealthPanel
 from labwatch.widgets.margin_panel import MarginPanel
 from labwatch.widgets.plot import hold_all
@@ -47,7 +46,7 @@ __all__ = ["STOP_CONFIRM_S", "Dashboard"]
 STOP_CONFIRM_S = 5.0
 
 
-class Dashboard(w.VBox):
+class Dashboard(FeedView, w.VBox):
     """Live (or replayed) Bell-test dashboard.
 
     Parameters
@@ -219,29 +218,10 @@ class Dashboard(w.VBox):
         """Disconnect (within a tenth of a second); figures stay on screen."""
         self.connected = False
 
-    async def wait(self, timeout_s: float | None = None) -> None:
-        """Wait until the live task has ended (after :meth:`stop`)."""
-        await self.feed.wait(timeout_s)
-
     def new_run(self) -> None:
         """Start a new run segment (the New run button)."""
         self.feed.new_run()
         self.controls.say("new run segment started: cumulative figures restart")
-
-    def ingest(self, frames: list[bytes], received_wall: float | None = None) -> IngestResult:
-        """Feed one message's frames through the engine (as if received now)."""
-        res = self.feed.ingest(frames, received_wall)
-        self._on_feed(self.feed, False)
-        return res
-
-    def replay(self, source: str | os.PathLike | Iterable[Any]) -> Snapshot | None:
-        """Feed a recording or a list of messages through the engine (see MonitorFeed)."""
-        return self.feed.replay(source)
-
-    def flush(self) -> None:
-        """Close the current analysis epoch and redraw."""
-        self.feed.engine.flush()
-        self.redraw()
 
     def add_functional(self, functional: BellFunctional, label: str | None = None) -> str:
         """Offer a custom coefficient tensor in the functional menu; returns its key."""

@@ -3,18 +3,17 @@
 from __future__ import annotations
 
 import math
-import os
-from collections.abc import Iterable
 from typing import Any
 
 import ipywidgets as w
 from traitlets import Bool, Enum, Float, Int, TraitError, Unicode, observe, validate
 
 from labwatch.analysis import AnalysisConfig
-from labwatch.engine import EngineConfig, IngestResult
+from labwatch.engine import EngineConfig
 from labwatch.snapshot import Snapshot
 from labwatch.widgets._format import DASH, esc, fmt, fmt_assumptions, fmt_count, fmt_pm
 from labwatch.widgets.feed import MonitorFeed
+from labwatch.widgets.feedview import FeedView
 from labwatch.widgets.plot import COLORS, TimePlot
 from labwatch.widgets.readout import Readout
 from labwatch.widgets.state import SAFETY_CAUTION, functional_info
@@ -26,7 +25,7 @@ __all__ = ["TRACES", "LiveMonitor"]
 TRACES = ("window", "run")
 
 
-class LiveMonitor(w.VBox):
+class LiveMonitor(FeedView, w.VBox):
     """A Bell value S(t) with a ±σ band, the local and quantum bounds and a big readout.
 
     Parameters
@@ -140,25 +139,6 @@ class LiveMonitor(w.VBox):
     def stop(self) -> None:
         """Stop receiving (within a tenth of a second); the figures stay."""
         self.feed.stop()
-
-    async def wait(self, timeout_s: float | None = None) -> None:
-        """Wait for the live task to end (after :meth:`stop`)."""
-        await self.feed.wait(timeout_s)
-
-    def ingest(self, frames: list[bytes], received_wall: float | None = None) -> IngestResult:
-        """Feed one message's frames (as received) through the engine."""
-        res = self.feed.ingest(frames, received_wall)
-        self._on_feed(self.feed, False)
-        return res
-
-    def replay(self, source: str | os.PathLike | Iterable[Any]) -> Snapshot | None:
-        """Feed a recording (path) or a list of messages through the engine; see MonitorFeed."""
-        return self.feed.replay(source)
-
-    def flush(self) -> None:
-        """Close the current analysis epoch and redraw (end of a hand-fed stream)."""
-        self.feed.engine.flush()
-        self.redraw()
 
     # ------------------------------------------------------------------ drawing
     def _on_feed(self, feed: MonitorFeed, force: bool) -> None:

@@ -22,7 +22,7 @@ def note_html(text: str, tone: str = "plain") -> str:
 
 
 class Panel(w.VBox):
-    """A titled, bordered box; subclasses implement :meth:`show`."""
+    """A titled, bordered box; every panel subclass defines ``show(state: ViewState)``."""
 
     title = "panel"
 
@@ -50,7 +50,3 @@ class Panel(w.VBox):
             return False
         self._drawn_version = state.history.version
         return True
-
-    def show(self, state: ViewState) -> None:  # pragma: no cover - abstract
-        """Draw ``state``."""
-        raise NotImplementedError

@@ -1,7 +1,7 @@
 """The served dashboard page in a real browser: ``labwatch serve`` (Voilà) of a simulated
 source on 127.0.0.1, driven by Playwright with the system Chromium.
 
-No browser is ever downloaded: Chromium is Debian's ``/usr/bin/chromium`` (.ci/run installs
+No browser is ever downloaded: Chromium is the one from Debian's ``chromium`` package (.ci/run installs
 it with apt); the test skips, saying so, only where that binary is absent.  Every request to a
 host other than the loopback address is blocked (Voilà's template asks a CDN for an icon font:
 the page must work without it).  A screenshot is saved to ``artifacts/``.
@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import os
 import re
+import shutil
 import signal
 import time
 import urllib.request
@@ -23,7 +24,8 @@ from tests.conftest import ROOT, free_port
 
 pytestmark = pytest.mark.browser
 
-CHROMIUM = "/usr/bin/chromium"
+# Debian's package installs it as /usr/bin/chromium; found on PATH so nothing is hard-wired
+CHROMIUM = shutil.which("chromium") or "chromium"
 CHROMIUM_ARGS = [
     "--headless",
     "--no-sandbox",
