@@ -18,13 +18,12 @@ import sys
 from collections.abc import Callable
 from typing import Any
 
-from labwatch.cli_options import add_analysis_options  # noqa: F401
+from labwatch.cli_options import add_analysis_options
 from labwatch.engine import MonitorEngine
 from labwatch.replay import ProgressCallback, ReplayResult, replay_into
 from labwatch.snapshot import Snapshot, StreamHealth, to_jsonable
 
 __all__ = [
-    "add_analysis_options",
     "add_analyze",
     "analysis_options_dict",
     "analyze_dict",

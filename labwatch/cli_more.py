@@ -19,22 +19,23 @@ __all__ = ["add_commands", "dispatch"]
 _COMMANDS: dict[str, object] = {}
 
 
+#: sub-command -> (module, its parser hook, its runner)
+_TABLE = (
+    ("demo", cli_demo, "add_demo", "run_demo"),
+    ("record", cli_record, "add_record", "run_record"),
+    ("replay", cli_replay, "add_replay", "run_replay"),
+    ("analyze", cli_analyze, "add_analyze", "run_analyze"),
+    ("report", cli_report, "add_report", "run_report"),
+    ("keys", cli_keys, "add_keys", "run_keys"),
+    ("serve", cli_serve, "add_serve", "run_serve"),
+)
+
+
 def add_commands(sub: argparse._SubParsersAction) -> None:
-    """Add the demo, record, replay, analyze, report and serve sub-commands."""
-    cli_demo.add_demo(sub)
-    _COMMANDS["demo"] = cli_demo.run_demo
-    cli_record.add_record(sub)
-    _COMMANDS["record"] = cli_record.run_record
-    cli_replay.add_replay(sub)
-    _COMMANDS["replay"] = cli_replay.run_replay
-    cli_analyze.add_analyze(sub)
-    _COMMANDS["analyze"] = cli_analyze.run_analyze
-    cli_report.add_report(sub)
-    _COMMANDS["report"] = cli_report.run_report
-    cli_keys.add_keys(sub)
-    _COMMANDS["keys"] = cli_keys.run_keys
-    cli_serve.add_serve(sub)
-    _COMMANDS["serve"] = cli_serve.run_serve
+    """Add the demo, record, replay, analyze, report, keys and serve sub-commands."""
+    for name, module, add, run in _TABLE:
+        getattr(module, add)(sub)
+        _COMMANDS[name] = getattr(module, run)
 
 
 def dispatch(args: argparse.Namespace) -> int:

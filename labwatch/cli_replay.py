@@ -19,7 +19,7 @@ __all__ = ["add_replay", "run_replay"]
 
 def add_replay(sub: argparse._SubParsersAction) -> None:
     from labwatch.cli import _add_security, _positive
-    from labwatch.cli_analyze import add_analysis_options
+    from labwatch.cli_options import add_analysis_options
 
     p = sub.add_parser(
         "replay",

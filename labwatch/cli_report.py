@@ -25,7 +25,7 @@ def default_out_dir(path: str) -> str:
 
 
 def add_report(sub: argparse._SubParsersAction) -> None:
-    from labwatch.cli_analyze import add_analysis_options
+    from labwatch.cli_options import add_analysis_options
 
     p = sub.add_parser(
         "report",
