@@ -182,7 +182,6 @@ class Analyzer:
         self._lrt_functional: BellFunctional | None = None
         self._sequence: BellValueSequence | None = None
         self._target = None if self.config.target is None else TargetWatch(self.config.target)
-        self._visibility_fig: Figure | None = None
         self.epochs = 0
         self._no_click_seen = False
         self._untested_total = 0
@@ -269,11 +268,6 @@ class Analyzer:
         low = high = math.nan
         if cv.interval is not None:
             low, high = cv.interval.low, cv.interval.high
-        self._visibility_fig = Figure(
-            "visibility",
-            cv.visibility,
-            cv.stderr,
-        )
         figures.append(
             Figure(
                 "visibility",
@@ -474,7 +468,7 @@ class Analyzer:
         if self._target is None:
             return
         by_name = {f.name: f for f in figures}
-        vis = self._visibility_fig
+        vis = by_name.get("visibility")
 
         def visibility_ucb(alpha: float) -> float:
             assert vis is not None
@@ -492,7 +486,7 @@ class Analyzer:
         if seq is not None and "bell_lcb" in by_name:
             figs["bell_lcb"] = seq.lower_bound
             figs["local_bound"] = seq.functional.local_bound
-        if vis is not None and "visibility" in by_name and math.isfinite(vis.stderr):
+        if vis is not None and math.isfinite(vis.stderr):
             figs["visibility_ucb"] = visibility_ucb
         d = self._target.check(figs)
         extras["target"] = {
@@ -544,7 +538,6 @@ class Analyzer:
             self._evidence(acc, tested, f, figures, extras)
         except ValueError as exc:  # e.g. a functional that no local or quantum data can violate
             extras["evidence_note"] = f"no stopping-safe test: {exc}"[:300]
-        self._visibility_fig = None
         self._visibility(acc, figures, extras)
         self._sequence_bound(acc, epoch_counts, figures)
         rates = self.rates(acc)
