@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 from collections import Counter, deque
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -401,7 +401,3 @@ class MonitorEngine:
         except Exception as exc:  # noqa: BLE001
             self.callback_errors += 1
             self.last_callback_error = f"{type(exc).__name__}: {exc}"[:300]
-
-    def with_health(self, snapshot: Snapshot) -> Snapshot:
-        """``snapshot`` with the health figures brought up to now (for views)."""
-        return replace(snapshot, health=self.health())
