@@ -16,6 +16,7 @@ import math
 import numpy as np
 from numpy.typing import NDArray
 
+from labwatch.hist_block import HistBlock
 from labwatch.protocol import CountBatch
 from labwatch.scenario import Scenario
 
@@ -156,6 +157,7 @@ class RunAccumulator:
         self._window_s = self._window.window_s
         # increments not yet folded in, all in window bin ``_pend_index``
         self._pend: list[NDArray[np.int64]] = []
+        self._pend_n = 0  # messages in _pend (an entry may be the sum of a run of them)
         self._pend_index: int | None = None
         self._pend_t_stop = 0.0
         self._pend_live = 0.0
@@ -209,6 +211,7 @@ class RunAccumulator:
             (self._pend_singles[0], self._pend_singles[1]),
         )
         self._pend = []
+        self._pend_n = 0
         self._pend_index = None
         self._pend_live = 0.0
         self._pend_singles = [0, 0]
@@ -237,10 +240,11 @@ class RunAccumulator:
             self._t_prev = t_stop
         live = max(0.0, t_stop - batch.t_start)
         index = math.floor(t_stop / self._bin_width)
-        if index != self._pend_index or len(self._pend) >= MAX_PENDING:
+        if index != self._pend_index or self._pend_n >= MAX_PENDING:
             self.flush()
             self._pend_index = index
         self._pend.append(batch.counts)
+        self._pend_n += 1
         self._pend_t_stop = t_stop
         self._pend_live += live
         if batch.singles is not None:
@@ -265,3 +269,90 @@ class RunAccumulator:
             self.t_first = batch.t_start
         if self.t_last is None or t_stop > self.t_last:
             self.t_last = t_stop
+
+    # ------------------------------------------------------------------ blocks
+    def steady_prefix(self, block: HistBlock) -> int:
+        """How many leading messages of ``block`` :meth:`add_block` may take.
+
+        A message that would be seen as a clock jump by :meth:`add` (and the messages after
+        it) must go through :meth:`add` instead; so must everything before this run has a
+        previous message.
+        """
+        prev = self._t_prev
+        if prev is None:
+            return 0
+        t0, t1 = block.t_start, block.t_stop
+        before = np.empty(len(t1))
+        before[0] = prev
+        before[1:] = t1[:-1]
+        jump = (np.asarray(t1) < before - self._bin_width) | (
+            np.asarray(t0) > before + self._window_s
+        )
+        return int(np.argmax(jump)) if jump.any() else len(t1)
+
+    def add_block(self, block: HistBlock, start: int, stop: int) -> None:
+        """Fold messages ``start:stop`` of ``block`` in; the same as :meth:`add` on each.
+
+        The messages must come from :meth:`steady_prefix` (in order, no clock jump).  Window
+        bins, the held-back increments and every float sum follow :meth:`add` message by
+        message, so the totals are bit-for-bit those of the one-at-a-time path.
+        """
+        if stop <= start:
+            return
+        sig = block.signature
+        t0s, t1s = block.t_start[start:stop], block.t_stop[start:stop]
+        bw = self._bin_width
+        lives = [max(0.0, t1 - t0) for t0, t1 in zip(t0s, t1s)]
+        g0 = start  # first message of the bin run not yet in _pend
+        for k, t1 in enumerate(t1s, start):
+            index = math.floor(t1 / bw)
+            if index != self._pend_index or self._pend_n >= MAX_PENDING:
+                if k > g0:
+                    self._hold(block, g0, k, lives[g0 - start : k - start])
+                self.flush()
+                self._pend_index = index
+                g0 = k
+            self._pend_n += 1
+        self._hold(block, g0, stop, lives[g0 - start :])
+        live_total = self.live_time_s
+        for live in lives:  # one message after the other, as add() sums them
+            live_total += live
+        self.live_time_s = live_total
+        self._t_prev = t1s[-1]
+        if block.singles is not None:
+            sums = block.singles[start:stop].sum(axis=0)
+            self.singles = (self.singles[0] + int(sums[0]), self.singles[1] + int(sums[1]))
+            self.has_singles = True
+        self.messages += stop - start
+        self.trials += int(block.trials[start:stop].sum())
+        if sig.coincidence_window_s is not None:
+            self.coincidence_window_s = sig.coincidence_window_s
+        self.no_click = self.no_click or sig.no_click
+        self.block_settings = True
+        first, last = min(t0s), max(t1s)
+        if self.t_first is None or first < self.t_first:
+            self.t_first = first
+        if self.t_last is None or last > self.t_last:
+            self.t_last = last
+
+    def _hold(self, block: HistBlock, start: int, stop: int, lives: list[float]) -> None:
+        """Put block messages ``start:stop`` (one window bin; ``lives`` their live times) in
+        the held-back increments."""
+        rows = block.counts[start:stop]
+        pairs = block.pair_index[start:stop]
+        sc = block.signature.scenario
+        total = np.zeros((sc.settings_a * sc.settings_b, rows.shape[1]), dtype=np.int64)
+        if (pairs == pairs[0]).all():
+            total[pairs[0]] = rows.sum(axis=0)
+        else:
+            np.add.at(total, pairs, rows)
+        self._pend.append(total.reshape(self._counts.shape))
+        self._pend_t_stop = block.t_stop[stop - 1]
+        pend_live = self._pend_live
+        for live in lives:
+            pend_live += live
+        self._pend_live = pend_live
+        if block.singles is not None:
+            sums = block.singles[start:stop].sum(axis=0)
+            self._pend_singles[0] += int(sums[0])
+            self._pend_singles[1] += int(sums[1])

@@ -17,6 +17,7 @@ import numpy as np
 
 from labwatch.accumulate import RunAccumulator
 from labwatch.analysis import AnalysisConfig, Analyzer
+from labwatch.hist_block import HistBlock, HistSignature, decode_hist_block, hist_signature
 from labwatch.protocol import (
     DEFAULT_LIMITS,
     CountBatch,
@@ -80,6 +81,10 @@ class IngestResult:
     snapshots: tuple[Snapshot, ...] = ()
 
 
+# Serial hist messages of one (topic, run) in a row before the lane is rebuilt (then doubling)
+_LANE_RETRY = 64
+_LANE_RETRY_MAX = 1 << 16
+
 # Shared results of the common case (accepted, no snapshot): IngestResult is frozen.
 _ACCEPTED = {kind: IngestResult(True, kind) for kind in ("hist", "events")}
 
@@ -135,6 +140,12 @@ class MonitorEngine:
         self.analysis_errors = 0
         self.last_analysis_error: str | None = None
         self._next_epoch_t = math.inf
+        # the fast lane for runs of near-identical hist messages (see ingest_many)
+        self._lane: HistSignature | None = None
+        self._lane_key: tuple[bytes, str] | None = None  # (topic, run) of the last build
+        self._lane_misses = 0
+        self._lane_retry = _LANE_RETRY
+        self._last_batch: CountBatch | None = None
 
     # ------------------------------------------------------------------ subscriptions
     def subscribe(self, callback: Callable[[Snapshot], None]) -> None:
@@ -180,6 +191,123 @@ class MonitorEngine:
             )
             return IngestResult(True, "status")
         return self._ingest_batch(msg, received_wall)
+
+    def ingest_many(
+        self, messages: Sequence[Sequence[bytes]], received_wall: float = math.nan
+    ) -> list[IngestResult]:
+        """Process messages received together; the same as :meth:`ingest` on each in turn.
+
+        Returns one :class:`IngestResult` per message.  Runs of near-identical histogram
+        messages of the followed run (consecutive sequence numbers, no clock jump) are decoded
+        and folded in as blocks (:mod:`labwatch.hist_block`), which is several times cheaper
+        per message; the counts, figures, snapshots and health are those of one-at-a-time
+        ingest, bit for bit.
+        """
+        results: list[IngestResult] = []
+        n = len(messages)
+        i = 0
+        while i < n:
+            lane = self._lane
+            if lane is not None:
+                used = self._ingest_lane(lane, messages, i, received_wall, results)
+                if used:
+                    i += used
+                    continue
+            frames = messages[i]
+            self._last_batch = None
+            result = self.ingest(frames, received_wall)
+            results.append(result)
+            i += 1
+            batch = self._last_batch
+            if batch is not None and batch.kind == "hist":
+                self._open_lane(frames, batch)
+        return results
+
+    def _open_lane(self, frames: Sequence[bytes], batch: CountBatch) -> None:
+        """After an accepted hist message the lane did not take: (re)build the lane from it.
+
+        A new topic or run builds at once.  For the same one (a lane that no longer fits, or
+        none could be built) the next try waits for ``_lane_retry`` such messages in a row,
+        doubling each time: a build costs ~0.2 ms, a message the full path ~20 us.
+        """
+        key = (bytes(frames[0]), batch.run)
+        if key == self._lane_key:
+            self._lane_misses += 1
+            if self._lane_misses < self._lane_retry:
+                return
+            self._lane_retry = min(2 * self._lane_retry, _LANE_RETRY_MAX)
+        else:
+            self._lane_key = key
+            self._lane_retry = _LANE_RETRY
+        self._lane_misses = 0
+        try:
+            self._lane = hist_signature(frames, batch, self.config.limits)
+        except MessageRejected:  # cannot happen for an accepted message; stay on the full path
+            self._lane = None
+
+    def _ingest_lane(
+        self,
+        lane: HistSignature,
+        messages: Sequence[Sequence[bytes]],
+        start: int,
+        wall: float,
+        results: list[IngestResult],
+    ) -> int:
+        """Ingest the block of ``lane`` messages at ``messages[start:]``; how many it took."""
+        run = self.run
+        if (
+            run is None
+            or lane.source != self.source
+            or run.run != lane.run
+            or (run.scenario is not lane.scenario and run.scenario != lane.scenario)
+        ):
+            return 0
+        expected = self.tracker.next_in_order(lane.source, lane.run)
+        if expected is None:
+            return 0
+        block = decode_hist_block(messages, start, lane, expected, self.config.limits)
+        if block is None:
+            return 0
+        used = run.steady_prefix(block)
+        if used:
+            self._lane_misses = 0
+            self._ingest_block(block, used, wall, results)
+        return used
+
+    def _ingest_block(
+        self, block: HistBlock, n: int, wall: float, results: list[IngestResult]
+    ) -> None:
+        """The first ``n`` messages of ``block``, as :meth:`_ingest_batch` would take them."""
+        run = self.run
+        assert run is not None
+        t_stop = block.t_stop
+        epoch_s = self.config.epoch_s
+        accepted = _ACCEPTED["hist"]
+        a = 0
+        while a < n:
+            # the epoch closes after the first message reaching the next epoch time
+            b = a
+            next_t = self._next_epoch_t
+            while b < n and t_stop[b] < next_t:
+                b += 1
+            closes = b < n
+            if closes:
+                b += 1
+            run.add_block(block, a, b)
+            self.tracker.advance(block.signature.source, block.signature.run, b - a)
+            self.messages += b - a
+            self.accepted += b - a
+            self.last_message_wall = wall
+            self.last_data_wall = wall
+            if not closes:
+                results.extend([accepted] * (b - a))
+                break
+            results.extend([accepted] * (b - a - 1))
+            snaps = self._close_epoch()
+            k = math.floor((t_stop[b - 1] - self._epoch_origin) / epoch_s) + 1
+            self._next_epoch_t = self._epoch_origin + k * epoch_s
+            results.append(IngestResult(True, "hist", snapshots=snaps) if snaps else accepted)
+            a = b
 
     def _reject(self, reason: str, detail: str, wall: float) -> IngestResult:
         self.rejected += 1
@@ -238,6 +366,7 @@ class MonitorEngine:
             self._untested += batch.counts
         self.accepted += 1
         self.last_data_wall = wall
+        self._last_batch = batch
         if self.run.clock_jumps != jumps:
             # the source clock jumped: close the epoch so far and cut epochs from the new time
             # (a backward jump would otherwise hold back every snapshot until it caught up)

@@ -76,6 +76,21 @@ class SequenceTracker:
         state = self._runs.get(source)
         return None if state is None else state.run
 
+    def next_in_order(self, source: str, run: str) -> int | None:
+        """The sequence number that would be ``in_order`` for ``(source, run)`` now, or None
+        when ``run`` is not the run tracked for ``source``."""
+        state = self._runs.get(source)
+        if state is None or state.run != run:
+            return None
+        return state.expected
+
+    def advance(self, source: str, run: str, n: int) -> None:
+        """Take ``n`` messages numbered from :meth:`next_in_order` on: the same as ``n``
+        :meth:`check` calls that each return ``in_order``."""
+        state = self._runs[source]
+        assert state.run == run and n >= 0
+        state.expected += n
+
     def check(self, source: str, run: str, seq: int) -> str:
         """Classify one data message and update the counters; returns a verdict string."""
         c = self.counters

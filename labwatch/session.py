@@ -12,7 +12,7 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-from labwatch.engine import MonitorEngine
+from labwatch.engine import IngestResult, MonitorEngine
 from labwatch.snapshot import Snapshot, StreamHealth
 from labwatch.transport import AsyncSubscriber, LinkState, SocketOptions, Subscriber
 
@@ -71,31 +71,49 @@ class LiveSession:
             wall = time.time()
         result = self.engine.ingest(frames, wall)
         if self.recorder is not None:
-            reason = (
-                None
-                if result.accepted or result.kind == "ignored"
-                else f"{result.reason}: {result.detail}"
+            self._record(frames, result, wall)
+
+    def handle_many(
+        self, batch: list[list[bytes]], wall: float | None = None
+    ) -> list[IngestResult]:
+        """Ingest messages received together (:meth:`MonitorEngine.ingest_many`), recording
+        each as :meth:`handle` does; returns one result per message."""
+        if wall is None:
+            wall = time.time()
+        results = self.engine.ingest_many(batch, wall)
+        if self.recorder is not None:
+            for frames, result in zip(batch, results):
+                if self.recorder is None:  # detached after a failure
+                    break
+                self._record(frames, result, wall)
+        return results
+
+    def _record(self, frames: list[bytes], result: IngestResult, wall: float) -> None:
+        reason = (
+            None
+            if result.accepted or result.kind == "ignored"
+            else f"{result.reason}: {result.detail}"
+        )
+        try:
+            self.recorder.write(
+                frames,
+                received_wall=wall,
+                received_mono=time.monotonic(),
+                rejected_reason=reason,
             )
+            self.recorded += 1
+        except OSError as exc:
+            self._recorder_failed(exc)
+        except ValueError as exc:  # the recorder refuses this message (e.g. too large)
+            self.not_recorded += 1
             try:
-                self.recorder.write(
-                    frames,
+                self.recorder.annotate(
+                    f"message not recorded: {exc}"[:500],
                     received_wall=wall,
                     received_mono=time.monotonic(),
-                    rejected_reason=reason,
                 )
-                self.recorded += 1
-            except OSError as exc:
-                self._recorder_failed(exc)
-            except ValueError as exc:  # the recorder refuses this message (e.g. too large)
-                self.not_recorded += 1
-                try:
-                    self.recorder.annotate(
-                        f"message not recorded: {exc}"[:500],
-                        received_wall=wall,
-                        received_mono=time.monotonic(),
-                    )
-                except OSError as err:
-                    self._recorder_failed(err)
+            except OSError as err:
+                self._recorder_failed(err)
 
     def _recorder_failed(self, exc: OSError) -> None:
         self.recording_error = f"recording stopped: {exc}"
@@ -135,9 +153,7 @@ class LiveSession:
                 wait = min(next_tick, start + duration_s) - now
                 batch = sub.recv_batch(max(wait, 0.0))
                 if batch:
-                    wall = time.time()
-                    for frames in batch:
-                        self.handle(frames, wall)
+                    self.handle_many(batch, time.time())
                 self.link = sub.link
                 if time.monotonic() >= next_tick:
                     next_tick += tick_s
@@ -166,9 +182,7 @@ class LiveSession:
                     break
                 batch = await sub.recv_batch(max(min(next_tick, start + duration_s) - now, 0.0))
                 if batch:
-                    wall = time.time()
-                    for frames in batch:
-                        self.handle(frames, wall)
+                    self.handle_many(batch, time.time())
                 self.link = sub.link
                 if time.monotonic() >= next_tick:
                     next_tick = time.monotonic() + tick_s
