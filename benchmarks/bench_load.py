@@ -8,8 +8,8 @@ receiver can measure latency on the same clock.
 Cases
 -----
 1. **small messages, flat out** (hist, one setting pair, 2 x 2 counts, ~450 B): the
-   receiver's message rate, labwatch (``Subscriber`` drain -> ``LiveSession.handle`` ->
-   ``MonitorEngine.ingest`` with accumulator and analysis) vs a bare pyzmq loop
+   receiver's message rate, labwatch (``Subscriber`` drain -> ``LiveSession.handle_many``
+   -> ``MonitorEngine.ingest_many`` with accumulator and analysis) vs a bare pyzmq loop
    (``recv_multipart`` only) on the same traffic.  Target: >= 50 % of the bare rate.
    Live, the bare loop keeps up with the sender (its rate is the sender's); so the case is
    repeated with the stream queued first, which measures each receiver's own cost.
@@ -26,7 +26,7 @@ Cases
    through (1 s rolling window: full after the first 300 messages); resident memory (VmRSS)
    is sampled every 0.5 s and must stay flat once the window is full.
 
-Run:  .venv/bin/python benchmarks/bench_load.py  [--quick]
+Run:  .venv/bin/python benchmarks/bench_load.py  [--quick] [--only small|ladder|events|soak]
 """
 
 from __future__ import annotations
@@ -170,7 +170,7 @@ def bare_receiver(ep: str, hwm: int, delay_s: float, out: mp.Queue) -> None:
 def labwatch_receiver(
     ep: str, hwm: int, window_s: float, epoch_s: float, timed: bool, delay_s: float, out: mp.Queue
 ) -> None:
-    """The labwatch path: Subscriber drain -> LiveSession.handle -> MonitorEngine.ingest.
+    """The labwatch path: Subscriber drain -> LiveSession.handle_many -> MonitorEngine.ingest_many.
 
     ``timed``: measure latencies and memory per message (costs ~2 us a message); otherwise
     only the time from the first message to the final status is taken.
@@ -188,43 +188,48 @@ def labwatch_receiver(
     snap_lat: list[float] = []
     rss: list[tuple[float, float, int]] = []  # (wall, MiB, trials so far)
     state = {"first": None, "last": None, "n": 0, "next_rss": 0.0}
-    handle = session.handle
+    handle_many = session.handle_many
 
-    def timed_handle(frames, wall=None):
+    def timed_many(batch, wall=None):
         now = time.time()
-        result_before = engine.epoch
-        handle(frames, now)
-        if frames[0][:1] == b"s":  # status
-            return
-        if state["first"] is None:
-            state["first"] = time.perf_counter()
-        state["last"] = time.perf_counter()
-        state["n"] += 1
-        if state["n"] % 97 == 0 or engine.epoch != result_before:
-            pub_wall = json.loads(frames[1])["x_pub_wall"]
-            done = time.time()
-            ingest_lat.append(done - pub_wall)
-            if engine.epoch != result_before:
-                snap_lat.append(done - pub_wall)
+        results = handle_many(batch, now)
+        done = time.time()
+        data = False
+        for frames, result in zip(batch, results):
+            if frames[0][:1] == b"s":  # status
+                continue
+            data = True
+            if state["first"] is None:
+                state["first"] = time.perf_counter()
+            state["n"] += 1
+            if state["n"] % 97 == 0 or result.snapshots:
+                pub_wall = json.loads(frames[1])["x_pub_wall"]
+                ingest_lat.append(done - pub_wall)
+                if result.snapshots:
+                    snap_lat.append(done - pub_wall)
+        if data:
+            state["last"] = time.perf_counter()
         if now >= state["next_rss"]:
             state["next_rss"] = now + 0.5
             rss.append((now, rss_mib(), engine.run.trials if engine.run else 0))
+        return results
 
-    def first_handle(frames, wall=None):
+    def first_many(batch, wall=None):
         if delay_s:
             time.sleep(delay_s)
             wall = time.time()
         state["first"] = time.perf_counter()
-        session.handle = plain_handle  # type: ignore[method-assign]
-        plain_handle(frames, wall)
+        session.handle_many = plain_many  # type: ignore[method-assign]
+        return plain_many(batch, wall)
 
-    def plain_handle(frames, wall=None):
-        # after a delay the batch's receive time is stale: take the time per message then
-        handle(frames, None if delay_s else wall)
-        if frames[0][0] == 115:  # b"s": the final status
+    def plain_many(batch, wall=None):
+        # after a delay the batch's receive time is stale: take the time per batch then
+        results = handle_many(batch, None if delay_s else wall)
+        if any(frames[0][0] == 115 for frames in batch):  # b"s": the final status
             state["last"] = time.perf_counter()
+        return results
 
-    session.handle = timed_handle if timed else first_handle  # type: ignore[method-assign]
+    session.handle_many = timed_many if timed else first_many  # type: ignore[method-assign]
 
     def tick(snapshot, health) -> bool:
         if engine.last_status is not None and engine.last_status.state == "stopped":
@@ -294,10 +299,24 @@ def pct(values: list[float], q: float) -> float:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--quick", action="store_true", help="smaller runs")
+    ap.add_argument(
+        "--only", choices=("small", "ladder", "events", "soak"), help="run one case only"
+    )
     args = ap.parse_args()
     scale = 0.3 if args.quick else 1.0
     big = 1_000_000
 
+    if args.only in (None, "small"):
+        small_messages(scale, big)
+    if args.only in (None, "ladder"):
+        rate_ladder(scale)
+    if args.only in (None, "events"):
+        event_batches(scale, big)
+    if args.only in (None, "soak"):
+        soak_run(scale, args.quick, big)
+
+
+def small_messages(scale: float, big: int) -> None:
     print("== 1. small messages (hist, 2x2 u4, ~450 B), flat out ==")
     n_small = int(300_000 * scale)
     # 20 us of source time per message: at 50k msg/s the source clock runs in real time and
@@ -318,6 +337,8 @@ def main() -> None:
     print(f"labwatch monitor       : {lq:10,.0f} msg/s  ({1e6 / lq:.1f} us/message)")
     print(f"ratio labwatch / bare  : {lq / bq:.2f}")
 
+
+def rate_ladder(scale: float) -> None:
     print("\n== 2. rate ladder (paced, SNDHWM = RCVHWM = 10 000) ==")
     print(f"{'rate/s':>8} {'sent':>8} {'lost':>7} {'ingest ms p50/p99':>19} "
           f"{'snapshot ms p50/p99':>21}")  # fmt: skip
@@ -341,6 +362,8 @@ def main() -> None:
           f"{'none up to ' + format(ladder[-1], ',') if drops_at is None else format(drops_at, ',')}"
           " msg/s")  # fmt: skip
 
+
+def event_batches(scale: float, big: int) -> None:
     print(f"\n== 3. event batches ({EVENTS_PER_MESSAGE} trials/message, |u1), flat out ==")
     n_ev = int(600 * scale)
     bare_e = run_case("bare", "events", n_ev, float("inf"), 0.01, big)
@@ -352,8 +375,10 @@ def main() -> None:
     print(f"ratio labwatch / bare  : {lw_ev / bare_ev:.2f};  target >= 1e7 events/s: "
           f"{'met' if lw_ev >= 1e7 else 'MISSED'}")  # fmt: skip
 
+
+def soak_run(scale: float, quick: bool, big: int) -> None:
     print("\n== 4. soak: >= 2e8 events at 2e7 events/s (paced below capacity), 1 s window ==")
-    n_soak = int(3100 * (scale if args.quick else 1.0))
+    n_soak = int(3100 * (scale if quick else 1.0))
     soak = run_case("labwatch", "events", n_soak, 300.0, 1.0 / 300, big, window_s=1.0, timed=True)
     rss = soak["rss"]
     full = [r for r in rss if r[2] >= 600 * EVENTS_PER_MESSAGE]  # the window (300) is full
