@@ -344,7 +344,7 @@ def rate_ladder(scale: float) -> None:
           f"{'snapshot ms p50/p99':>21}")  # fmt: skip
     sustainable = 0.0
     drops_at = None
-    ladder = [5_000, 10_000, 20_000, 30_000, 40_000, 50_000, 60_000, 80_000]
+    ladder = [5_000, 10_000, 20_000, 30_000, 40_000, 50_000, 60_000, 80_000, 100_000, 120_000]
     for rate in ladder:
         n = int(rate * 2.5 * scale)
         r = run_case(
