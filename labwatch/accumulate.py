@@ -319,12 +319,13 @@ class RunAccumulator:
             live_total += live
         self.live_time_s = live_total
         self._t_prev = t1s[-1]
+        # Python integers: a long block of big counts can pass int64 (add() never wraps)
         if block.singles is not None:
-            sums = block.singles[start:stop].sum(axis=0)
-            self.singles = (self.singles[0] + int(sums[0]), self.singles[1] + int(sums[1]))
+            sa, sb = _int_sums(block.singles[start:stop])
+            self.singles = (self.singles[0] + sa, self.singles[1] + sb)
             self.has_singles = True
         self.messages += stop - start
-        self.trials += int(block.trials[start:stop].sum())
+        self.trials += sum(block.trials[start:stop].tolist())
         if sig.coincidence_window_s is not None:
             self.coincidence_window_s = sig.coincidence_window_s
         self.no_click = self.no_click or sig.no_click
@@ -353,6 +354,12 @@ class RunAccumulator:
             pend_live += live
         self._pend_live = pend_live
         if block.singles is not None:
-            sums = block.singles[start:stop].sum(axis=0)
-            self._pend_singles[0] += int(sums[0])
-            self._pend_singles[1] += int(sums[1])
+            sa, sb = _int_sums(block.singles[start:stop])
+            self._pend_singles[0] += sa
+            self._pend_singles[1] += sb
+
+
+def _int_sums(singles: NDArray[np.int64]) -> tuple[int, int]:
+    """Column sums of an (n, 2) singles block as Python integers."""
+    a, b = singles.T.tolist()
+    return sum(a), sum(b)

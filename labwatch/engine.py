@@ -84,6 +84,10 @@ class IngestResult:
 # Serial hist messages of one (topic, run) in a row before the lane is rebuilt (then doubling)
 _LANE_RETRY = 64
 _LANE_RETRY_MAX = 1 << 16
+# Longest pause (messages) between lane attempts that keep failing
+_LANE_PAUSE_MAX = 256
+# Shorter blocks go one message at a time (slow senders, streams broken up by other traffic)
+_MIN_BLOCK = 8
 
 # Shared results of the common case (accepted, no snapshot): IngestResult is frozen.
 _ACCEPTED = {kind: IngestResult(True, kind) for kind in ("hist", "events")}
@@ -145,6 +149,8 @@ class MonitorEngine:
         self._lane_key: tuple[bytes, str] | None = None  # (topic, run) of the last build
         self._lane_misses = 0
         self._lane_retry = _LANE_RETRY
+        self._lane_skip = 0  # messages to take one at a time before the next lane attempt
+        self._lane_pause = 0
         self._last_batch: CountBatch | None = None
 
     # ------------------------------------------------------------------ subscriptions
@@ -209,10 +215,17 @@ class MonitorEngine:
         while i < n:
             lane = self._lane
             if lane is not None:
-                used = self._ingest_lane(lane, messages, i, received_wall, results)
-                if used:
-                    i += used
-                    continue
+                if self._lane_skip:
+                    self._lane_skip -= 1
+                else:
+                    used = self._ingest_lane(lane, messages, i, received_wall, results)
+                    if used:
+                        self._lane_pause = 0
+                        i += used
+                        continue
+                    # attempts that keep failing back off (a slow or oddly mixed stream)
+                    self._lane_skip = self._lane_pause
+                    self._lane_pause = min(max(1, 2 * self._lane_pause), _LANE_PAUSE_MAX)
             frames = messages[i]
             self._last_batch = None
             result = self.ingest(frames, received_wall)
@@ -226,11 +239,12 @@ class MonitorEngine:
     def _open_lane(self, frames: Sequence[bytes], batch: CountBatch) -> None:
         """After an accepted hist message the lane did not take: (re)build the lane from it.
 
-        A new topic or run builds at once.  For the same one (a lane that no longer fits, or
-        none could be built) the next try waits for ``_lane_retry`` such messages in a row,
-        doubling each time: a build costs ~0.2 ms, a message the full path ~20 us.
+        A new run builds at once.  For the same run (a lane that no longer fits, or none
+        could be built) the next try waits for ``_lane_retry`` such messages in a row,
+        doubling each time, so a publisher cannot make the monitor rebuild on every message:
+        a build costs ~0.2 ms, a message on the full path ~20 us.
         """
-        key = (bytes(frames[0]), batch.run)
+        key = (batch.source, batch.run)
         if key == self._lane_key:
             self._lane_misses += 1
             if self._lane_misses < self._lane_retry:
@@ -242,7 +256,7 @@ class MonitorEngine:
         self._lane_misses = 0
         try:
             self._lane = hist_signature(frames, batch, self.config.limits)
-        except MessageRejected:  # cannot happen for an accepted message; stay on the full path
+        except Exception:  # noqa: BLE001 - the lane is only a shortcut: stay on the full path
             self._lane = None
 
     def _ingest_lane(
@@ -265,23 +279,33 @@ class MonitorEngine:
         expected = self.tracker.next_in_order(lane.source, lane.run)
         if expected is None:
             return 0
-        block = decode_hist_block(messages, start, lane, expected, self.config.limits)
+        if lane.limits is not self.config.limits and lane.limits != self.config.limits:
+            # the caps were changed: a new lane is needed
+            self._lane = None
+            return 0
+        # a few messages cost less one at a time than a block's numpy calls
+        block = decode_hist_block(messages, start, lane, expected, self.config.limits, _MIN_BLOCK)
         if block is None:
             return 0
-        used = run.steady_prefix(block)
+        used = self._ingest_block(block, run.steady_prefix(block), wall, results)
         if used:
             self._lane_misses = 0
-            self._ingest_block(block, used, wall, results)
+            self._lane_retry = _LANE_RETRY
         return used
 
     def _ingest_block(
         self, block: HistBlock, n: int, wall: float, results: list[IngestResult]
-    ) -> None:
-        """The first ``n`` messages of ``block``, as :meth:`_ingest_batch` would take them."""
-        run = self.run
+    ) -> int:
+        """Take the first ``n`` messages of ``block`` as :meth:`_ingest_batch` would, one
+        epoch at a time; returns how many were taken.
+
+        Snapshot callbacks run inside an epoch close and may change the engine (a new run
+        segment, another configuration): the block then stops and the rest takes the
+        ordinary way.
+        """
+        run, config, lane = self.run, self.config, self._lane
         assert run is not None
         t_stop = block.t_stop
-        epoch_s = self.config.epoch_s
         accepted = _ACCEPTED["hist"]
         a = 0
         while a < n:
@@ -301,13 +325,17 @@ class MonitorEngine:
             self.last_data_wall = wall
             if not closes:
                 results.extend([accepted] * (b - a))
-                break
+                return b
             results.extend([accepted] * (b - a - 1))
             snaps = self._close_epoch()
+            epoch_s = self.config.epoch_s
             k = math.floor((t_stop[b - 1] - self._epoch_origin) / epoch_s) + 1
             self._next_epoch_t = self._epoch_origin + k * epoch_s
             results.append(IngestResult(True, "hist", snapshots=snaps) if snaps else accepted)
             a = b
+            if self.run is not run or self.config is not config or self._lane is not lane:
+                break
+        return a
 
     def _reject(self, reason: str, detail: str, wall: float) -> IngestResult:
         self.rejected += 1

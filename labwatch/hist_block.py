@@ -26,9 +26,9 @@ How the shortcut stays exact
   more colons than fields no key can occur twice.  Colons inside strings need the slower
   count of ``":`` and ``" :`` (tabs, newlines and double spaces, which could hide a key's
   colon from it, end the block).
-* Extra fields keep any value both parsers accept.  A header of 1000 bytes or more with
-  over 64 ``[`` takes the full path: the standard library refuses nesting near 1000 levels
-  that msgspec may accept.
+* Extra fields keep any value both parsers accept.  A header with more than 64 ``[`` takes
+  the full path; with objects bounded by the colon count, nesting then stays far below
+  either parser's recursion limit, so stack depth cannot make them disagree.
 * ``no_click`` and the coincidence window must equal the first message's.
 """
 
@@ -88,6 +88,8 @@ class HistSignature:
         Count dtype of the payload.
     payload_bytes : int
         Payload length of one message (``d_A * d_B`` counts).
+    limits : Limits
+        The size caps the first message was checked against (a lane serves only them).
     """
 
     topic: bytes
@@ -101,6 +103,7 @@ class HistSignature:
     singles_lengths: tuple[int, int] | None
     dtype: np.dtype
     payload_bytes: int
+    limits: Limits
 
     @property
     def no_click(self) -> bool:
@@ -204,6 +207,8 @@ def hist_signature(
         return None
     if type(header["t_start"]) is not float or type(header["t_stop"]) is not float:
         return None
+    if raw.count(b"[") > _MAX_BRACKETS:
+        return None
     scenario = batch.scenario
     names = list(header)
     # positional field names: header keys need not be Python identifiers
@@ -217,9 +222,12 @@ def hist_signature(
         if k not in header:
             spec.append((f"f{len(rename)}", None if default is None else bool, default))
             rename[f"f{len(rename)}"] = k
-    record = msgspec.defstruct(
-        "LaneHeader", spec, rename=rename, forbid_unknown_fields=True, gc=False
-    )
+    try:
+        record = msgspec.defstruct(
+            "LaneHeader", spec, rename=rename, forbid_unknown_fields=True, gc=False
+        )
+    except (ValueError, TypeError, UnicodeError):
+        return None  # a key msgspec cannot name (quote, backslash, control character, ...)
     slot = {k: f for f, k in rename.items()}
     getter = operator.attrgetter(
         *(slot[k] for k in ("seq", "t_start", "t_stop", "pair", "singles", "no_click",
@@ -239,6 +247,7 @@ def hist_signature(
         singles_lengths=None if singles is None else (len(singles[0]), len(singles[1])),
         dtype=dt,
         payload_bytes=scenario.outcomes_a * scenario.outcomes_b * dt.itemsize,
+        limits=limits,
     )
 
 
@@ -263,12 +272,13 @@ def decode_hist_block(
     signature: HistSignature,
     first_seq: int,
     limits: Limits = DEFAULT_LIMITS,
+    min_size: int = 1,
 ) -> HistBlock | None:
     """Decode ``messages[start:]`` as far as they form a block of ``signature``'s lane.
 
     The block ends before the first message that differs from the signature, is not the
     next sequence number (``first_seq``, ``first_seq + 1``, ...), or fails a check the full
-    parser makes.  Returns None when not even ``messages[start]`` qualifies.
+    parser makes.  Returns None when fewer than ``min_size`` messages qualify.
     """
     sig = signature
     if first_seq < 0 or first_seq + len(messages) > _MAX_SEQ:
@@ -277,6 +287,8 @@ def decode_hist_block(
     get = sig.getter
     error = msgspec.DecodeError  # ValidationError is a subclass
     topic0, nbytes, n_keys, tail = sig.topic, sig.payload_bytes, sig.n_keys, sig.tail
+    if limits is not sig.limits and limits != sig.limits:
+        return None
     max_header = limits.max_header_bytes
     has_singles = sig.singles_lengths is not None
     seq = first_seq
@@ -291,18 +303,19 @@ def decode_hist_block(
             break
         topic, raw, payload = frames
         if (
-            topic != topic0
+            type(topic) is not bytes
+            or topic != topic0
             or type(raw) is not bytes
             or type(payload) is not bytes
             or len(payload) != nbytes
             or len(raw) > max_header
-            or (len(raw) >= 1000 and raw.count(b"[") > _MAX_BRACKETS)
+            or raw.count(b"[") > _MAX_BRACKETS  # bounded nesting (module notes)
             or not (raw.count(b":") == n_keys or _keys_unique(raw, n_keys))
         ):
             break
         try:
             values = get(decode(raw))
-        except error:
+        except (error, RecursionError):
             break
         if values[0] != seq or values[5:] != tail:
             break
@@ -314,7 +327,7 @@ def decode_hist_block(
         payloads.append(payload)
         seq += 1
     n = len(t1s)
-    if n == 0:
+    if n < max(min_size, 1):
         return None
     raw_counts = np.frombuffer(b"".join(payloads), dtype=sig.dtype).reshape(n, -1)
     bad = np.asarray(t1s) < np.asarray(t0s)
@@ -324,7 +337,7 @@ def decode_hist_block(
         bad |= (raw_counts > MAX_CELL_COUNT).any(axis=1)
     if bad.any():  # the full path rejects that message: the block ends before it
         n = int(np.argmax(bad))
-        if n == 0:
+        if n < max(min_size, 1):
             return None
         del t0s[n:], t1s[n:], pairs[n:], singles[n:]
         raw_counts = raw_counts[:n]

@@ -347,3 +347,103 @@ def test_ingest_many_uses_blocks_and_matches_with_the_visibility_lp():
     assert [_normal(s) for s in m_snaps] == [_normal(s) for s in s_snaps]
     assert _state(many) == _state(serial)
     assert many._lane is not None and many._lane_misses == 0  # the blocks did the work
+
+
+# --------------------------------------------------------------------------- review findings
+
+
+def _same_as_serial(stream, *, config=None, setup=None, chunk=None):
+    engines = []
+    for many in (False, True):
+        engine = MonitorEngine(config or EngineConfig(window_s=0.5, epoch_s=0.05))
+        snaps = []
+        engine.subscribe(snaps.append)
+        if setup is not None:
+            setup(engine)
+        if many:
+            size = chunk or len(stream)
+            results = [r for k in range(0, len(stream), size)
+                       for r in engine.ingest_many(stream[k : k + size], 7.0)]  # fmt: skip
+        else:
+            results = [engine.ingest(f, 7.0) for f in stream]
+        engines.append((engine, [_normal(s) for s in snaps],
+                        [(r.accepted, r.reason, len(r.snapshots)) for r in results]))  # fmt: skip
+    (serial, s_snaps, s_res), (many, m_snaps, m_res) = engines
+    assert m_res == s_res
+    assert m_snaps == s_snaps
+    assert _state(many) == _state(serial)
+    return serial, many
+
+
+@pytest.mark.parametrize("key", ["x_lab\\dir", 'x_"q"', "x_\n", "\x00", "x_\ud800", ""])
+def test_extra_keys_msgspec_cannot_name_leave_the_lane_closed_not_the_monitor_down(key):
+    # json.dumps escapes them; the full path accepts the message and ignores the field
+    stream = [_hist(s, **{key: 1}) for s in range(40)]
+    assert parse_message(stream[0]).seq == 0
+    _same_as_serial(stream)
+
+
+def test_a_snapshot_callback_that_starts_a_new_run_segment_mid_block():
+    def setup(engine):
+        engine.subscribe(lambda snap: engine.new_run() if snap.epoch == 2 else None)
+
+    serial, many = _same_as_serial([_hist(s) for s in range(200)], setup=setup)
+    assert serial.runs_seen == 2
+
+
+def test_changed_size_caps_close_the_lane():
+    from dataclasses import replace
+
+    from labwatch.protocol import Limits
+
+    stream = [_hist(s) for s in range(60)]
+
+    def feed(engine, many):
+        take = engine.ingest_many if many else (lambda fs, w: [engine.ingest(f, w) for f in fs])
+        out = take(stream[:30], 7.0)
+        engine.config = replace(engine.config, limits=Limits(max_payload_bytes=8))
+        return [(r.accepted, r.reason) for r in out + take(stream[30:], 7.0)]
+
+    one, two = MonitorEngine(), MonitorEngine()
+    assert feed(two, True) == feed(one, False)
+    assert one.run.messages == two.run.messages == 30  # the last 30 are over the new cap
+
+
+def test_counts_past_int64_sum_like_the_one_at_a_time_path():
+    # 2**52 trials a message (64 x 64 cells at 2**40): 2100 messages pass 2**63 in total
+    sc = Scenario(2, 2, 64, 64)
+    block = np.full((64, 64), 1 << 40)
+    stream = [
+        encode_histogram(source="bench-7", run="r1", seq=s, t_start=s * 1e-3,
+                         t_stop=(s + 1) * 1e-3, counts=block, scenario=sc, pair=(0, 1),
+                         dtype="<u8")
+        for s in range(2100)
+    ]  # fmt: skip
+    engine = MonitorEngine(EngineConfig(analysis=AnalysisConfig(visibility=False)))
+    engine.ingest_many(stream, 7.0)
+    assert engine.run.trials == 2100 * 64 * 64 * (1 << 40) > 2**63
+
+
+@pytest.mark.parametrize("kind", [bytearray, memoryview, lambda b: np.frombuffer(b, np.uint8)])
+def test_topic_frames_that_are_not_bytes_take_the_full_path(kind):
+    stream = [_hist(s) for s in range(20)]
+    for frames in stream[1:]:
+        frames[0] = kind(frames[0])
+    _same_as_serial(stream)
+
+
+def test_a_publisher_mixing_topics_cannot_make_the_lane_rebuild_on_every_message(monkeypatch):
+    import labwatch.engine as engine_module
+
+    builds = []
+    real = engine_module.hist_signature
+    monkeypatch.setattr(
+        engine_module, "hist_signature", lambda *a, **k: builds.append(1) or real(*a, **k)
+    )
+    stream = [_hist(s) for s in range(4000)]
+    for frames in stream[1::2]:
+        frames[0] = b"hist/"  # same source and run, topic without the source part
+    _same_as_serial(
+        stream, chunk=500, config=EngineConfig(analysis=AnalysisConfig(visibility=False))
+    )
+    assert len(builds) <= 12  # 1 + retries after 64, 128, 256, ... serial messages
