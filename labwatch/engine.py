@@ -88,6 +88,9 @@ _LANE_RETRY_MAX = 1 << 16
 _LANE_PAUSE_MAX = 256
 # Shorter blocks go one message at a time (slow senders, streams broken up by other traffic)
 _MIN_BLOCK = 8
+# Messages decoded per lane attempt: from _SPAN_MIN, doubling while blocks take them all
+_SPAN_MIN = 16
+_SPAN_MAX = 4096
 
 # Shared results of the common case (accepted, no snapshot): IngestResult is frozen.
 _ACCEPTED = {kind: IngestResult(True, kind) for kind in ("hist", "events")}
@@ -149,6 +152,7 @@ class MonitorEngine:
         self._lane_key: tuple[bytes, str] | None = None  # (topic, run) of the last build
         self._lane_misses = 0
         self._lane_retry = _LANE_RETRY
+        self._lane_span = _SPAN_MIN  # messages decoded at most per lane attempt
         self._lane_skip = 0  # messages to take one at a time before the next lane attempt
         self._lane_pause = 0
         self._last_batch: CountBatch | None = None
@@ -219,13 +223,14 @@ class MonitorEngine:
                     self._lane_skip -= 1
                 else:
                     used = self._ingest_lane(lane, messages, i, received_wall, results)
-                    if used:
+                    if used >= _MIN_BLOCK:
                         self._lane_pause = 0
+                    else:  # attempts that keep (nearly) failing back off
+                        self._lane_skip = self._lane_pause
+                        self._lane_pause = min(max(1, 2 * self._lane_pause), _LANE_PAUSE_MAX)
+                    if used:
                         i += used
                         continue
-                    # attempts that keep failing back off (a slow or oddly mixed stream)
-                    self._lane_skip = self._lane_pause
-                    self._lane_pause = min(max(1, 2 * self._lane_pause), _LANE_PAUSE_MAX)
             frames = messages[i]
             self._last_batch = None
             result = self.ingest(frames, received_wall)
@@ -283,11 +288,21 @@ class MonitorEngine:
             # the caps were changed: a new lane is needed
             self._lane = None
             return 0
-        # a few messages cost less one at a time than a block's numpy calls
-        block = decode_hist_block(messages, start, lane, expected, self.config.limits, _MIN_BLOCK)
+        # a few messages cost less one at a time than a block's numpy calls; at most
+        # _lane_span are decoded, so what a block does not take (a clock jump, a bad count
+        # found by the vector checks) costs little: the span doubles while blocks use it all
+        span = self._lane_span
+        block = decode_hist_block(
+            messages, start, lane, expected, self.config.limits, _MIN_BLOCK, span
+        )
         if block is None:
+            self._lane_span = _SPAN_MIN
             return 0
         used = self._ingest_block(block, run.steady_prefix(block), wall, results)
+        if used < block.size:
+            self._lane_span = _SPAN_MIN
+        elif block.size == span:
+            self._lane_span = min(2 * span, _SPAN_MAX)
         if used:
             self._lane_misses = 0
             self._lane_retry = _LANE_RETRY

@@ -273,12 +273,14 @@ def decode_hist_block(
     first_seq: int,
     limits: Limits = DEFAULT_LIMITS,
     min_size: int = 1,
+    max_size: int | None = None,
 ) -> HistBlock | None:
     """Decode ``messages[start:]`` as far as they form a block of ``signature``'s lane.
 
     The block ends before the first message that differs from the signature, is not the
     next sequence number (``first_seq``, ``first_seq + 1``, ...), or fails a check the full
-    parser makes.  Returns None when fewer than ``min_size`` messages qualify.
+    parser makes, and after ``max_size`` messages.  Returns None when fewer than
+    ``min_size`` messages qualify.
     """
     sig = signature
     if first_seq < 0 or first_seq + len(messages) > _MAX_SEQ:
@@ -297,7 +299,8 @@ def decode_hist_block(
     pairs: list[tuple[int, int]] = []
     singles: list[tuple[tuple[int, ...], tuple[int, ...]]] = []
     payloads: list[bytes] = []
-    for i in range(start, len(messages)):
+    stop = len(messages) if max_size is None else min(len(messages), start + max_size)
+    for i in range(start, stop):
         frames = messages[i]
         if len(frames) != 3:
             break

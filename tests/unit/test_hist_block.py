@@ -447,3 +447,38 @@ def test_a_publisher_mixing_topics_cannot_make_the_lane_rebuild_on_every_message
         stream, chunk=500, config=EngineConfig(analysis=AnalysisConfig(visibility=False))
     )
     assert len(builds) <= 12  # 1 + retries after 64, 128, 256, ... serial messages
+
+
+class _CountingList(list):
+    """A list that counts item reads: how many times the engine looked at a message."""
+
+    reads = 0
+
+    def __getitem__(self, index):
+        self.reads += 1
+        return super().__getitem__(index)
+
+
+@pytest.mark.parametrize("trouble", ["negative count", "clock jump"])
+def test_messages_a_block_cannot_take_are_not_decoded_over_and_over(trouble):
+    # every 12th message is rejected (negative count) or jumps the clock forwards: the lane
+    # must not re-decode the rest of the batch at each one (that was quadratic in the batch)
+    stream, t = [], 0.0
+    for s in range(2000):
+        counts = np.zeros((2, 2), dtype=np.int64)
+        if s % 12 == 11:
+            if trouble == "negative count":
+                counts[0, 0] = -1
+            else:
+                t += 40.0  # more than the 30 s window
+        stream.append(
+            encode_histogram(source="bench-7", run="r1", seq=s, t_start=t, t_stop=t + 1e-3,
+                             counts=counts, scenario=SC, pair=(0, 0), dtype="<i4")
+        )  # fmt: skip
+        t += 1e-3
+    _same_as_serial(stream, config=EngineConfig(analysis=AnalysisConfig(visibility=False)))
+    engine = MonitorEngine(EngineConfig(analysis=AnalysisConfig(visibility=False)))
+    batch = _CountingList(stream)
+    engine.ingest_many(batch, 7.0)
+    assert engine.accepted == 2000 - (2000 // 12 if trouble == "negative count" else 0)
+    assert batch.reads <= 4 * len(stream)
