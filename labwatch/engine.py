@@ -244,21 +244,25 @@ class MonitorEngine:
     def _open_lane(self, frames: Sequence[bytes], batch: CountBatch) -> None:
         """After an accepted hist message the lane did not take: (re)build the lane from it.
 
-        A new run builds at once.  For the same run (a lane that no longer fits, or none
-        could be built) the next try waits for ``_lane_retry`` such messages in a row,
-        doubling each time, so a publisher cannot make the monitor rebuild on every message:
-        a build costs ~0.2 ms, a message on the full path ~20 us.
+        A build costs ~0.2 ms (more for long headers), a message on the full path ~20 us,
+        so builds are rationed per (source, run): a new run earns its lane with
+        ``_MIN_BLOCK`` accepted messages; after that, a lane that no longer fits (or none
+        could be built) is tried again after ``_lane_retry`` such messages in a row,
+        doubling each time.  A publisher changing run ids or header forms all the time thus
+        keeps to the full path instead of paying for builds.
         """
         key = (batch.source, batch.run)
-        if key == self._lane_key:
-            self._lane_misses += 1
-            if self._lane_misses < self._lane_retry:
-                return
-            self._lane_retry = min(2 * self._lane_retry, _LANE_RETRY_MAX)
-        else:
+        if key != self._lane_key:
             self._lane_key = key
-            self._lane_retry = _LANE_RETRY
+            self._lane = None  # the old run's lane
+            self._lane_misses = 0
+            self._lane_retry = _MIN_BLOCK
+        self._lane_misses += 1
+        if self._lane_misses < self._lane_retry:
+            return
         self._lane_misses = 0
+        self._lane_retry = min(max(_LANE_RETRY, 2 * self._lane_retry), _LANE_RETRY_MAX)
+        self._lane_skip = self._lane_pause = 0
         try:
             self._lane = hist_signature(frames, batch, self.config.limits)
         except Exception:  # noqa: BLE001 - the lane is only a shortcut: stay on the full path
@@ -315,10 +319,10 @@ class MonitorEngine:
         epoch at a time; returns how many were taken.
 
         Snapshot callbacks run inside an epoch close and may change the engine (a new run
-        segment, another configuration): the block then stops and the rest takes the
-        ordinary way.
+        segment, another configuration or source, messages of their own): the block then
+        stops and the rest takes the ordinary way.
         """
-        run, config, lane = self.run, self.config, self._lane
+        run = self.run
         assert run is not None
         t_stop = block.t_stop
         accepted = _ACCEPTED["hist"]
@@ -342,15 +346,24 @@ class MonitorEngine:
                 results.extend([accepted] * (b - a))
                 return b
             results.extend([accepted] * (b - a - 1))
+            before = self._lane_state()
             snaps = self._close_epoch()
             epoch_s = self.config.epoch_s
             k = math.floor((t_stop[b - 1] - self._epoch_origin) / epoch_s) + 1
             self._next_epoch_t = self._epoch_origin + k * epoch_s
             results.append(IngestResult(True, "hist", snapshots=snaps) if snaps else accepted)
             a = b
-            if self.run is not run or self.config is not config or self._lane is not lane:
-                break
+            if self._lane_state() != before:
+                break  # a callback changed the engine (or fed it messages itself)
         return a
+
+    def _lane_state(self) -> tuple:
+        """What a snapshot callback could change that the rest of a block relies on."""
+        # the objects themselves (compared by identity, or by value for the config)
+        return (
+            self.messages, self.run, self.tracker, self.source, self.config, self._lane,
+            self.runs_seen,
+        )  # fmt: skip
 
     def _reject(self, reason: str, detail: str, wall: float) -> IngestResult:
         self.rejected += 1

@@ -60,6 +60,8 @@ _MAX_SEQ = 1 << 62
 # |t| beyond this takes the full path (window-bin indices must fit in int64)
 _MAX_TIME_S = 1e12
 _MAX_BRACKETS = 64
+# Headers with more fields take the full path (a lane's schema costs time per field to build)
+_MAX_FIELDS = 64
 _Time = Annotated[float, msgspec.Meta(gt=-_MAX_TIME_S, lt=_MAX_TIME_S)]
 _Count = Annotated[int, msgspec.Meta(ge=0, le=MAX_CELL_COUNT)]
 
@@ -194,8 +196,8 @@ def hist_signature(
     """The lane signature of an accepted message, or None if it cannot open a lane.
 
     ``batch`` must be what :func:`~labwatch.protocol.parse_message` returned for ``frames``.
-    Only ``hist`` messages with the ``pair`` layout, a plain scenario object and
-    floating-point times open a lane.
+    Only ``hist`` messages with the ``pair`` layout, a plain scenario object,
+    floating-point times and at most 64 fields open a lane.
     """
     if batch.kind != "hist" or len(frames) != 3:
         return None
@@ -207,7 +209,7 @@ def hist_signature(
         return None
     if type(header["t_start"]) is not float or type(header["t_stop"]) is not float:
         return None
-    if raw.count(b"[") > _MAX_BRACKETS:
+    if raw.count(b"[") > _MAX_BRACKETS or len(header) > _MAX_FIELDS:
         return None
     scenario = batch.scenario
     names = list(header)

@@ -482,3 +482,41 @@ def test_messages_a_block_cannot_take_are_not_decoded_over_and_over(trouble):
     engine.ingest_many(batch, 7.0)
     assert engine.accepted == 2000 - (2000 // 12 if trouble == "negative count" else 0)
     assert batch.reads <= 4 * len(stream)
+
+
+@pytest.mark.parametrize("action", ["feed a message", "follow another source", "new tracker"])
+def test_a_snapshot_callback_that_changes_the_engine_stops_the_block(action):
+    from labwatch.sequence import SequenceTracker
+
+    stream = [_hist(s) for s in range(300)]
+
+    def setup(engine):
+        def callback(snap):
+            if snap.epoch != 2:
+                return
+            if action == "feed a message":  # the next number: a duplicate for what follows
+                engine.ingest(_hist(engine.tracker.next_in_order("bench-7", "r1")), 7.0)
+            elif action == "follow another source":
+                engine.source = "other-3"
+            else:
+                engine.tracker = SequenceTracker()
+
+        engine.subscribe(callback)
+
+    _same_as_serial(stream, setup=setup)
+
+
+def test_a_publisher_changing_run_ids_cannot_make_the_lane_rebuild_on_every_message(
+    monkeypatch,
+):
+    import labwatch.engine as engine_module
+
+    builds = []
+    real = engine_module.hist_signature
+    monkeypatch.setattr(
+        engine_module, "hist_signature", lambda *a, **k: builds.append(1) or real(*a, **k)
+    )
+    # a new run id every 3 messages: a run earns a lane only after 8 accepted messages
+    stream = [_hist(s % 3, run=f"r{s // 3}", t=s * 0.004) for s in range(900)]
+    _same_as_serial(stream, config=EngineConfig(analysis=AnalysisConfig(visibility=False)))
+    assert builds == []
