@@ -81,7 +81,7 @@ class IngestResult:
     snapshots: tuple[Snapshot, ...] = ()
 
 
-# Serial hist messages of one (topic, run) in a row before the lane is rebuilt (then doubling)
+# Serial hist messages of one (source, run) in a row before the lane is rebuilt (then doubling)
 _LANE_RETRY = 64
 _LANE_RETRY_MAX = 1 << 16
 # Longest pause (messages) between lane attempts that keep failing
@@ -149,7 +149,7 @@ class MonitorEngine:
         self._next_epoch_t = math.inf
         # the fast lane for runs of near-identical hist messages (see ingest_many)
         self._lane: HistSignature | None = None
-        self._lane_key: tuple[bytes, str] | None = None  # (topic, run) of the last build
+        self._lane_key: tuple[str, str] | None = None  # (source, run) of the last build
         self._lane_misses = 0
         self._lane_retry = _LANE_RETRY
         self._lane_span = _SPAN_MIN  # messages decoded at most per lane attempt
@@ -289,16 +289,14 @@ class MonitorEngine:
         if expected is None:
             return 0
         if lane.limits is not self.config.limits and lane.limits != self.config.limits:
-            # the caps were changed: a new lane is needed
+            # the caps were changed: the lane (which checks its own) must be rebuilt
             self._lane = None
             return 0
         # a few messages cost less one at a time than a block's numpy calls; at most
         # _lane_span are decoded, so what a block does not take (a clock jump, a bad count
         # found by the vector checks) costs little: the span doubles while blocks use it all
         span = self._lane_span
-        block = decode_hist_block(
-            messages, start, lane, expected, self.config.limits, _MIN_BLOCK, span
-        )
+        block = decode_hist_block(messages, start, lane, expected, _MIN_BLOCK, span)
         if block is None:
             self._lane_span = _SPAN_MIN
             return 0

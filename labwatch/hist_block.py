@@ -253,16 +253,16 @@ def hist_signature(
     )
 
 
-def _keys_unique(raw: bytes, n_keys: int) -> bool:
-    """True if a header holding all ``n_keys`` lane fields cannot repeat a key.
+def _keys_unique_slow(raw: bytes, n_keys: int) -> bool:
+    """For a header holding all ``n_keys`` lane fields and more colons than that (colons
+    inside strings): True if it still cannot repeat a key.
 
-    Every key is followed by a colon: with no more colons than fields, no key occurs twice.
-    Colons inside strings need the slower count of a closing quote followed by ``:`` or
-    `` :``; tabs, newlines and double spaces (which could put other whitespace before a
-    key's colon and hide it from that count) are refused.
+    Every key is followed by a colon, so with no more colons than fields no key occurs
+    twice (the fast check, made inline by the caller).  With colons inside strings, count a
+    closing quote followed by ``:`` or `` :`` instead; tabs, newlines and double spaces
+    (which could put other whitespace before a key's colon and hide it from that count)
+    are refused.
     """
-    if raw.count(b":") == n_keys:
-        return True
     if b"\t" in raw or b"\n" in raw or b"\r" in raw or b'"  ' in raw:
         return False
     return raw.count(b'":') + raw.count(b'" :') == n_keys
@@ -273,11 +273,12 @@ def decode_hist_block(
     start: int,
     signature: HistSignature,
     first_seq: int,
-    limits: Limits = DEFAULT_LIMITS,
     min_size: int = 1,
     max_size: int | None = None,
 ) -> HistBlock | None:
     """Decode ``messages[start:]`` as far as they form a block of ``signature``'s lane.
+
+    The size caps are the signature's own (``signature.limits``).
 
     The block ends before the first message that differs from the signature, is not the
     next sequence number (``first_seq``, ``first_seq + 1``, ...), or fails a check the full
@@ -291,9 +292,7 @@ def decode_hist_block(
     get = sig.getter
     error = msgspec.DecodeError  # ValidationError is a subclass
     topic0, nbytes, n_keys, tail = sig.topic, sig.payload_bytes, sig.n_keys, sig.tail
-    if limits is not sig.limits and limits != sig.limits:
-        return None
-    max_header = limits.max_header_bytes
+    max_header = sig.limits.max_header_bytes
     has_singles = sig.singles_lengths is not None
     seq = first_seq
     t0s: list[float] = []
@@ -315,7 +314,7 @@ def decode_hist_block(
             or len(payload) != nbytes
             or len(raw) > max_header
             or raw.count(b"[") > _MAX_BRACKETS  # bounded nesting (module notes)
-            or not (raw.count(b":") == n_keys or _keys_unique(raw, n_keys))
+            or (raw.count(b":") != n_keys and not _keys_unique_slow(raw, n_keys))
         ):
             break
         try:
